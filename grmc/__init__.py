@@ -1,0 +1,29 @@
+"""grmc: exact stochastic generation-recombination noise in nanoscale semiconductor volumes.
+
+Importing grmc compiles nothing and imports neither numba, xarray nor matplotlib; the public
+functions import what they need when called.
+
+Public API
+----------
+load_scenario(path=None, *, text=None) -> Scenario
+build_model(scenario) -> Model
+steady_state(model) -> ndarray            (continuum, under the charge constraint)
+lna_covariance(model) -> ndarray          (linear-noise covariance)
+run(scenario, ...) -> xarray.Dataset      (the ensemble, as ``grmc run`` writes it)
+"""
+
+from __future__ import annotations
+
+__version__ = "0.1.0"
+
+from .model import Model, build_model  # noqa: E402
+from .scenario import Scenario, ScenarioError, load_scenario  # noqa: E402
+
+__all__ = [
+    "__version__",
+    "Scenario",
+    "ScenarioError",
+    "Model",
+    "load_scenario",
+    "build_model",
+]

@@ -1,0 +1,513 @@
+"""Scenario -> Model: species, event channels, their laws, counts in the volume, charge.
+
+This module is the ONLY place where the physics of a channel is written down.  Each channel
+carries both its exact propensity (used by the event engine and the master-equation solver)
+and its macroscopic rate law (used by the continuum rate equations and the linear-noise
+approximation), in one product-of-factors form:
+
+    a_r(x) = k_r * prod_f (sign_f * x[s_f] + offset_f)
+
+with at most three factors.  The exact and the macroscopic law differ only in the offsets:
+a falling factorial ``N (N - 1)`` of a three-body event has offset -1 in the exact law and 0
+in the macroscopic law (the textbook ``C_n n^2 p``), and ``T_k - M_k`` (empty traps) has
+offset ``T_k`` in both.
+
+The channel table (propensities in events/s, V the volume in cm^3):
+
+=============================  ================================  ==============
+channel                        propensity                        change
+=============================  ================================  ==============
+thermal generation             B n_i^2 V                         e+1, h+1
+radiative recombination        B N_e N_h / V                     e-1, h-1
+optical generation             G V                               e+1, h+1
+Auger eeh                      C_n N_e (N_e - 1) N_h / V^2       e-1, h-1
+impact generation by e         C_n n_i^2 N_e                     e+1, h+1
+Auger ehh                      C_p N_e N_h (N_h - 1) / V^2       e-1, h-1
+impact generation by h         C_p n_i^2 N_h                     e+1, h+1
+<k>: electron capture          c_n N_e (T_k - M_k) / V           e-1, M_k+1
+<k>: electron emission         c_n n_1 M_k                       e+1, M_k-1
+<k>: hole capture              c_p N_h M_k / V                   h-1, M_k-1
+<k>: hole emission             c_p p_1 (T_k - M_k)               h+1, M_k+1
+=============================  ================================  ==============
+
+with n_1 = n_i exp(E_t / kT) and p_1 = n_i exp(-E_t / kT).  A channel whose coefficient is
+zero is absent.  Every channel keeps the charge
+
+    N_e - N_h + sum_k M_k = D - A + sum_{donor-like k} T_k
+
+References
+----------
+W. Shockley and W. T. Read, "Statistics of the recombinations of holes and electrons",
+Phys. Rev. 87, 835 (1952).  R. N. Hall, "Electron-hole recombination in germanium",
+Phys. Rev. 87, 387 (1952).  D. T. Gillespie, J. Comput. Phys. 22, 403 (1976).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field, replace
+from functools import cached_property
+
+import numpy as np
+
+from .scenario import Scenario
+
+__all__ = [
+    "BOLTZMANN_EV_K",
+    "ELEMENTARY_CHARGE_C",
+    "Counts",
+    "Factor",
+    "Channel",
+    "Model",
+    "nominal_counts",
+    "draw_counts",
+    "build_model",
+]
+
+#: Boltzmann constant [eV/K] (CODATA 2018, exact).
+BOLTZMANN_EV_K = 8.617333262e-5
+#: Elementary charge [C] (CODATA 2018, exact).
+ELEMENTARY_CHARGE_C = 1.602176634e-19
+
+#: Most factors any channel's law has (three-body Auger).
+MAX_FACTORS = 3
+
+ELECTRONS = "electrons"
+HOLES = "holes"
+
+
+def trapped_name(label: str) -> str:
+    """Species name of the occupied traps of one level."""
+    return f"trapped:{label}"
+
+
+@dataclass(frozen=True)
+class Counts:
+    """Integer numbers of dopants and traps in the volume.
+
+    Attributes
+    ----------
+    donors, acceptors : int  Ionized dopant counts D, A [count]
+    traps : tuple of int  T_k per trap level, in scenario order [count]
+    """
+
+    donors: int
+    acceptors: int
+    traps: tuple[int, ...] = ()
+
+
+@dataclass(frozen=True)
+class Factor:
+    """One factor ``sign * x[species] + offset`` of a propensity.
+
+    Attributes
+    ----------
+    species : int  Index into the state vector
+    sign : int  +1 or -1
+    exact_offset : float  Offset in the exact propensity
+    macro_offset : float  Offset in the macroscopic rate law
+    """
+
+    species: int
+    sign: int = 1
+    exact_offset: float = 0.0
+    macro_offset: float = 0.0
+
+
+@dataclass(frozen=True)
+class Channel:
+    """One event channel.
+
+    Attributes
+    ----------
+    name : str  Human-readable name (trap channels start with the trap label)
+    coefficient : float  k_r, including the volume factors [s^-1 per product of counts]
+    factors : tuple of Factor
+    change : tuple of (species index, delta)
+    reverse : str or None  Name of the channel that undoes this one (detailed balance pair)
+    """
+
+    name: str
+    coefficient: float
+    factors: tuple[Factor, ...]
+    change: tuple[tuple[int, int], ...]
+    reverse: str | None = None
+
+
+def _nearest_int(x: float) -> int:
+    return int(math.floor(x + 0.5))
+
+
+def nominal_counts(scenario: Scenario) -> Counts:
+    """Dopant and trap counts as ``round(density * V)`` (trap counts given directly as is).
+
+    Parameters
+    ----------
+    scenario : Scenario
+
+    Returns
+    -------
+    Counts
+    """
+    vol = scenario.volume.volume_cm3
+    mat = scenario.material
+    return Counts(
+        donors=_nearest_int(mat.donors_cm3 * vol),
+        acceptors=_nearest_int(mat.acceptors_cm3 * vol),
+        traps=tuple(_nearest_int(m) for m in trap_means(scenario)),
+    )
+
+
+def trap_means(scenario: Scenario) -> tuple[float, ...]:
+    """Expected trap count of each level [count] (exact for ``count``, density * V otherwise)."""
+    vol = scenario.volume.volume_cm3
+    out = []
+    for trap in scenario.traps:
+        if trap.count is not None:
+            out.append(float(trap.count))
+        elif trap.density_cm3 is not None:
+            out.append(trap.density_cm3 * vol)
+        else:
+            out.append(trap.areal_density_cm2 * scenario.volume.surface_area_cm2)
+    return tuple(out)
+
+
+def draw_counts(scenario: Scenario, rng: np.random.Generator) -> Counts:
+    """Dopant and trap counts of one device drawn from Poisson laws (``dopants = "poisson"``).
+
+    Donors, acceptors and traps given by a density (volume or areal) are Poisson distributed
+    with the mean density * V (or areal density * area); traps given by ``count`` keep it.
+
+    Parameters
+    ----------
+    scenario : Scenario
+    rng : numpy.random.Generator
+        The device's own stream.
+
+    Returns
+    -------
+    Counts
+    """
+    vol = scenario.volume.volume_cm3
+    mat = scenario.material
+    donors = int(rng.poisson(mat.donors_cm3 * vol))
+    acceptors = int(rng.poisson(mat.acceptors_cm3 * vol))
+    traps = []
+    for trap, mean in zip(scenario.traps, trap_means(scenario)):
+        traps.append(trap.count if trap.count is not None else int(rng.poisson(mean)))
+    return Counts(donors=donors, acceptors=acceptors, traps=tuple(traps))
+
+
+@dataclass(frozen=True)
+class Model:
+    """The stochastic model of one volume: species, channels, charge.
+
+    Attributes
+    ----------
+    scenario : Scenario
+    counts : Counts  Dopant and trap counts used
+    species : tuple of str  ``electrons``, ``holes``, ``trapped:<label>``...
+    channels : tuple of Channel
+    charge : int  The conserved value of ``charge_weights @ x`` [elementary charges]
+
+    Notes
+    -----
+    The plain arrays (``stoich``, ``coefficient``, ``factor_species``...) are what the engine
+    kernels, the continuum and the exact solver take.  They are derived from ``channels`` once.
+    """
+
+    scenario: Scenario
+    counts: Counts
+    species: tuple[str, ...]
+    channels: tuple[Channel, ...]
+    charge: int
+    trap_kinds: tuple[str, ...] = field(default=())
+
+    # ---------------------------------------------------------------- sizes and names
+    @property
+    def volume_cm3(self) -> float:
+        """Volume V [cm^3]."""
+        return self.scenario.volume.volume_cm3
+
+    @property
+    def n_species(self) -> int:
+        return len(self.species)
+
+    @property
+    def n_channels(self) -> int:
+        return len(self.channels)
+
+    @property
+    def channel_names(self) -> tuple[str, ...]:
+        return tuple(c.name for c in self.channels)
+
+    # ---------------------------------------------------------------- plain arrays
+    @cached_property
+    def stoich(self) -> np.ndarray:
+        """Stoichiometry matrix nu, shape (channels, species) [count]."""
+        nu = np.zeros((self.n_channels, self.n_species), dtype=np.int64)
+        for r, ch in enumerate(self.channels):
+            for s, d in ch.change:
+                nu[r, s] += d
+        nu.setflags(write=False)
+        return nu
+
+    @cached_property
+    def coefficient(self) -> np.ndarray:
+        """k_r of each channel, shape (channels,) [s^-1 per product of counts]."""
+        out = np.array([c.coefficient for c in self.channels], dtype=np.float64)
+        out.setflags(write=False)
+        return out
+
+    def _factor_table(self, attr: str, fill, dtype) -> np.ndarray:
+        out = np.full((self.n_channels, MAX_FACTORS), fill, dtype=dtype)
+        for r, ch in enumerate(self.channels):
+            for f, fac in enumerate(ch.factors):
+                out[r, f] = getattr(fac, attr)
+        out.setflags(write=False)
+        return out
+
+    @cached_property
+    def factor_species(self) -> np.ndarray:
+        """Species index of each factor, -1 where unused; shape (channels, 3)."""
+        return self._factor_table("species", -1, np.int64)
+
+    @cached_property
+    def factor_sign(self) -> np.ndarray:
+        """Sign of each factor (0 where unused); shape (channels, 3)."""
+        return self._factor_table("sign", 0.0, np.float64)
+
+    @cached_property
+    def factor_offset_exact(self) -> np.ndarray:
+        """Offset of each factor in the exact propensity (1 where unused); (channels, 3)."""
+        return self._factor_table("exact_offset", 1.0, np.float64)
+
+    @cached_property
+    def factor_offset_macro(self) -> np.ndarray:
+        """Offset of each factor in the macroscopic law (1 where unused); (channels, 3)."""
+        return self._factor_table("macro_offset", 1.0, np.float64)
+
+    @cached_property
+    def charge_weights(self) -> np.ndarray:
+        """w with ``w @ x == charge`` for every reachable state: +1 e, -1 h, +1 per trapped e."""
+        w = np.ones(self.n_species, dtype=np.int64)
+        w[1] = -1
+        w.setflags(write=False)
+        return w
+
+    @cached_property
+    def capacity(self) -> np.ndarray:
+        """Upper bound of each species (-1: unbounded; T_k for trapped electrons) [count]."""
+        cap = np.full(self.n_species, -1, dtype=np.int64)
+        cap[2:] = self.counts.traps
+        cap.setflags(write=False)
+        return cap
+
+    @cached_property
+    def reverse_pairs(self) -> tuple[tuple[int, int], ...]:
+        """Index pairs (forward, reverse) of channels that undo each other."""
+        index = {c.name: i for i, c in enumerate(self.channels)}
+        pairs = []
+        for i, c in enumerate(self.channels):
+            if c.reverse is not None and c.reverse in index and i < index[c.reverse]:
+                pairs.append((i, index[c.reverse]))
+        return tuple(pairs)
+
+    @cached_property
+    def dependency(self) -> tuple[np.ndarray, np.ndarray]:
+        """Channels whose propensity an event of each channel changes, in CSR form.
+
+        Returns
+        -------
+        indptr : ndarray, shape (channels + 1,)
+        indices : ndarray  Channel indices; channel r's dependents are
+            ``indices[indptr[r]:indptr[r + 1]]``.
+        """
+        changed = [set(np.nonzero(self.stoich[r])[0]) for r in range(self.n_channels)]
+        reads = [
+            {f.species for f in ch.factors} for ch in self.channels
+        ]
+        indptr = [0]
+        indices: list[int] = []
+        for r in range(self.n_channels):
+            dep = [q for q in range(self.n_channels) if reads[q] & changed[r]]
+            indices.extend(dep)
+            indptr.append(len(indices))
+        return np.array(indptr, dtype=np.int64), np.array(indices, dtype=np.int64)
+
+    # ---------------------------------------------------------------- laws
+    def _laws(self, x: np.ndarray, offsets: np.ndarray) -> np.ndarray:
+        x = np.asarray(x, dtype=np.float64)
+        fs = self.factor_species
+        vals = self.factor_sign * x[..., np.maximum(fs, 0)] + offsets
+        vals = np.where(fs >= 0, vals, 1.0)
+        return self.coefficient * np.prod(vals, axis=-1)
+
+    def propensities(self, x: np.ndarray) -> np.ndarray:
+        """Exact propensities a_r(x) [events/s] of an integer state (or a stack of states).
+
+        Parameters
+        ----------
+        x : array_like, shape (..., species)  Counts [count]
+
+        Returns
+        -------
+        ndarray, shape (..., channels)
+        """
+        x = np.asarray(x, dtype=np.float64)
+        return self._laws(x, self.factor_offset_exact)
+
+    def rates(self, x: np.ndarray) -> np.ndarray:
+        """Macroscopic rate laws w_r(x) [events/s] at mean counts x (real valued).
+
+        Parameters
+        ----------
+        x : array_like, shape (..., species)  Mean counts [count]
+
+        Returns
+        -------
+        ndarray, shape (..., channels)
+        """
+        x = np.asarray(x, dtype=np.float64)
+        return self._laws(x, self.factor_offset_macro)
+
+    def rate_jacobian(self, x: np.ndarray) -> np.ndarray:
+        """d w_r / d x_s of the macroscopic laws, shape (channels, species) [s^-1]."""
+        x = np.asarray(x, dtype=np.float64)
+        fs, sg, off = self.factor_species, self.factor_sign, self.factor_offset_macro
+        vals = np.where(fs >= 0, sg * x[np.maximum(fs, 0)] + off, 1.0)
+        jac = np.zeros((self.n_channels, self.n_species))
+        for r in range(self.n_channels):
+            for f in range(MAX_FACTORS):
+                s = fs[r, f]
+                if s < 0:
+                    continue
+                others = np.prod(np.delete(vals[r], f))
+                jac[r, s] += self.coefficient[r] * sg[r, f] * others
+        return jac
+
+    def drift(self, x: np.ndarray) -> np.ndarray:
+        """Right-hand side of the rate equations d<x>/dt = nu^T w(<x>) [count/s]."""
+        return self.rates(x) @ self.stoich
+
+    # ---------------------------------------------------------------- states
+    def charge_of(self, x: np.ndarray) -> float:
+        """``charge_weights @ x`` [elementary charges]."""
+        return float(np.asarray(x, dtype=np.float64) @ self.charge_weights)
+
+    def nearest_neutral_state(self, x: np.ndarray) -> np.ndarray:
+        """The integer state of the right charge nearest to real-valued mean counts ``x``.
+
+        Trap occupancies are rounded and kept within [0, T_k]; then electrons and holes are
+        chosen with N_e - N_h fixed by the charge, nearest to (x_e, x_h) and not negative.
+
+        Parameters
+        ----------
+        x : array_like, shape (species,)  Mean counts [count]
+
+        Returns
+        -------
+        ndarray of int64, shape (species,)
+        """
+        x = np.asarray(x, dtype=np.float64)
+        out = np.zeros(self.n_species, dtype=np.int64)
+        for k, total in enumerate(self.counts.traps):
+            out[2 + k] = min(max(_nearest_int(x[2 + k]), 0), total)
+        d = self.charge - int(out[2:].sum())  # N_e - N_h
+        e = _nearest_int(0.5 * (x[0] + x[1] + d))
+        e = max(e, d, 0)
+        out[0], out[1] = e, e - d
+        return out
+
+    def with_counts(self, counts: Counts) -> Model:
+        """The same scenario with other dopant and trap counts (one device of a population)."""
+        return build_model(self.scenario, counts=counts)
+
+    def describe(self) -> list[dict]:
+        """One dict per channel: name, coefficient and change, for tables and tests."""
+        return [
+            {"name": c.name, "coefficient": c.coefficient,
+             "change": {self.species[s]: d for s, d in c.change}}
+            for c in self.channels
+        ]
+
+
+def build_model(scenario: Scenario, *, counts: Counts | None = None) -> Model:
+    """Build the model of a scenario.
+
+    Parameters
+    ----------
+    scenario : Scenario
+    counts : Counts, optional
+        Dopant and trap counts; default :func:`nominal_counts` (rounded densities).
+
+    Returns
+    -------
+    Model
+    """
+    if counts is None:
+        counts = nominal_counts(scenario)
+    mat = scenario.material
+    vol = scenario.volume.volume_cm3
+    ni = mat.intrinsic_density_cm3
+    kT = BOLTZMANN_EV_K * mat.temperature_K
+    E, H = 0, 1
+    species = [ELECTRONS, HOLES] + [trapped_name(t.label) for t in scenario.traps]
+    pair_up = ((E, +1), (H, +1))
+    pair_down = ((E, -1), (H, -1))
+    ch: list[Channel] = []
+
+    def add(name, coefficient, factors, change, reverse=None):
+        if coefficient > 0.0:
+            ch.append(Channel(name, float(coefficient), tuple(factors), change, reverse))
+
+    B = mat.radiative_cm3_s
+    add("thermal generation", B * ni * ni * vol, (), pair_up, "radiative recombination")
+    add("radiative recombination", B / vol, (Factor(E), Factor(H)), pair_down,
+        "thermal generation")
+    if scenario.light.waveform == "steady":
+        add("optical generation", scenario.light.generation_cm3_s * vol, (), pair_up)
+    Cn = mat.auger_electron_cm6_s
+    add("Auger eeh", Cn / vol**2, (Factor(E), Factor(E, 1, -1.0, 0.0), Factor(H)), pair_down,
+        "impact generation (e)")
+    add("impact generation (e)", Cn * ni * ni, (Factor(E),), pair_up, "Auger eeh")
+    Cp = mat.auger_hole_cm6_s
+    add("Auger ehh", Cp / vol**2, (Factor(E), Factor(H), Factor(H, 1, -1.0, 0.0)), pair_down,
+        "impact generation (h)")
+    add("impact generation (h)", Cp * ni * ni, (Factor(H),), pair_up, "Auger ehh")
+
+    donor_traps = 0
+    for k, (trap, total) in enumerate(zip(scenario.traps, counts.traps)):
+        M = 2 + k
+        if total <= 0:
+            continue
+        if trap.kind == "donor":
+            donor_traps += total
+        n1 = ni * math.exp(trap.energy_eV / kT)
+        p1 = ni * math.exp(-trap.energy_eV / kT)
+        cn, cp = trap.electron_capture_cm3_s, trap.hole_capture_cm3_s
+        empty = Factor(M, -1, float(total), float(total))
+        lab = trap.label
+        add(f"{lab}: electron capture", cn / vol, (Factor(E), empty), ((E, -1), (M, +1)),
+            f"{lab}: electron emission")
+        add(f"{lab}: electron emission", cn * n1, (Factor(M),), ((E, +1), (M, -1)),
+            f"{lab}: electron capture")
+        add(f"{lab}: hole capture", cp / vol, (Factor(H), Factor(M)), ((H, -1), (M, -1)),
+            f"{lab}: hole emission")
+        add(f"{lab}: hole emission", cp * p1, (empty,), ((H, +1), (M, +1)),
+            f"{lab}: hole capture")
+    charge = counts.donors - counts.acceptors + donor_traps
+    return Model(
+        scenario=scenario,
+        counts=counts,
+        species=tuple(species),
+        channels=tuple(ch),
+        charge=int(charge),
+        trap_kinds=tuple(t.kind for t in scenario.traps),
+    )
+
+
+def with_light_off(model: Model) -> Model:
+    """The same model in the dark (used for equilibrium references)."""
+    scen = replace(model.scenario, light=replace(model.scenario.light, waveform="off"))
+    return build_model(scen, counts=model.counts)

@@ -1,0 +1,622 @@
+"""Scenario files: TOML text -> frozen, validated dataclasses.
+
+Every key of the scenario format (see the README, "Scenario files") is declared once in the
+``_SCHEMA`` tables below with its type, range and default.  Every error raised here is a
+:class:`ScenarioError` whose message names the file, the section and the key, so that the
+command line can print one clear line and exit with status 2.
+
+Units are in the key names: densities [cm^-3], areas [cm^2], times [s], energies [eV].
+"""
+
+from __future__ import annotations
+
+import difflib
+import math
+import re
+import tomllib
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Literal
+
+__all__ = [
+    "ScenarioError",
+    "Material",
+    "Volume",
+    "Trap",
+    "Light",
+    "Start",
+    "RunSettings",
+    "Readout",
+    "Scenario",
+    "load_scenario",
+    "parse_scenario",
+    "set_key",
+]
+
+
+class ScenarioError(ValueError):
+    """A scenario file (or a value given for one of its keys) is not valid.
+
+    Parameters
+    ----------
+    source : str
+        File name (or ``"<string>"``) the scenario came from.
+    section : str
+        TOML section, e.g. ``"material"`` or ``"traps.deep"``; empty for top-level keys.
+    key : str
+        The offending key; empty when the whole file is at fault.
+    message : str
+        What is wrong, in plain words.
+    """
+
+    def __init__(self, source: str, section: str, key: str, message: str):
+        self.source = source
+        self.section = section
+        self.key = key
+        self.message = message
+        where = ""
+        if section and key:
+            where = f"[{section}] {key}: "
+        elif section:
+            where = f"[{section}]: "
+        elif key:
+            where = f"{key}: "
+        super().__init__(f"{source}: {where}{message}")
+
+
+# --------------------------------------------------------------------------------------------
+# Dataclasses handed to the rest of the program
+# --------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class Material:
+    """Bulk material parameters.
+
+    Attributes
+    ----------
+    temperature_K : float  Lattice temperature [K]
+    intrinsic_density_cm3 : float  Intrinsic carrier density n_i [cm^-3]
+    radiative_cm3_s : float  Band-to-band coefficient B [cm^3 s^-1]
+    auger_electron_cm6_s : float  Auger coefficient C_n for e + e + h -> e [cm^6 s^-1]
+    auger_hole_cm6_s : float  Auger coefficient C_p for e + h + h -> h [cm^6 s^-1]
+    donors_cm3 : float  Ionized donor density [cm^-3]
+    acceptors_cm3 : float  Ionized acceptor density [cm^-3]
+    """
+
+    temperature_K: float
+    intrinsic_density_cm3: float
+    radiative_cm3_s: float = 0.0
+    auger_electron_cm6_s: float = 0.0
+    auger_hole_cm6_s: float = 0.0
+    donors_cm3: float = 0.0
+    acceptors_cm3: float = 0.0
+
+
+@dataclass(frozen=True)
+class Volume:
+    """The closed volume.
+
+    Attributes
+    ----------
+    volume_cm3 : float  Volume V [cm^3]
+    surface_area_cm2 : float  Surface area used by ``areal_density_cm2`` traps [cm^2]
+    size_nm : tuple of float or None  Box edges when given [nm]
+    """
+
+    volume_cm3: float
+    surface_area_cm2: float | None
+    size_nm: tuple[float, float, float] | None = None
+
+
+@dataclass(frozen=True)
+class Trap:
+    """One trap level (Shockley-Read-Hall centre).
+
+    Attributes
+    ----------
+    label : str  Unique name
+    count : int or None  Number of traps in the volume, when given directly
+    density_cm3 : float or None  Volume density [cm^-3], when given
+    areal_density_cm2 : float or None  Areal density on the surface [cm^-2], when given
+    energy_eV : float  E_t - E_i [eV]
+    kind : "acceptor" or "donor"  Charge states 0/-1 (acceptor) or +1/0 (donor)
+    electron_capture_cm3_s : float  c_n = sigma_n v_th [cm^3 s^-1]
+    hole_capture_cm3_s : float  c_p = sigma_p v_th [cm^3 s^-1]
+    """
+
+    label: str
+    count: int | None
+    density_cm3: float | None
+    areal_density_cm2: float | None
+    energy_eV: float
+    kind: Literal["acceptor", "donor"]
+    electron_capture_cm3_s: float
+    hole_capture_cm3_s: float
+
+
+@dataclass(frozen=True)
+class Light:
+    """Illumination.
+
+    Attributes
+    ----------
+    generation_cm3_s : float  Mean optical pair generation rate per volume [cm^-3 s^-1]
+    waveform : "steady" or "off"
+    """
+
+    generation_cm3_s: float = 0.0
+    waveform: Literal["steady", "off"] = "steady"
+
+
+@dataclass(frozen=True)
+class Start:
+    """Start of the observation window.
+
+    Attributes
+    ----------
+    excess_pairs : int  Electron-hole pairs added at t = 0, after settling [count]
+    """
+
+    excess_pairs: int = 0
+
+
+@dataclass(frozen=True)
+class RunSettings:
+    """Ensemble settings.
+
+    Attributes
+    ----------
+    trajectories : int  Ensemble size
+    duration_s : float  Observation window after settling [s]
+    samples : int  Uniform sample points in the window
+    settle_s : float  Simulated and discarded before t = 0 [s]
+    seed : int  Seed of every random stream
+    dopants : "rounded" or "poisson"  How dopant and trap counts are set per trajectory
+    """
+
+    trajectories: int = 256
+    duration_s: float = 1.0e-6
+    samples: int = 4096
+    settle_s: float = 0.0
+    seed: int = 1
+    dopants: Literal["rounded", "poisson"] = "rounded"
+
+
+@dataclass(frozen=True)
+class Readout:
+    """A biased photoconductor bar read out as a current.
+
+    Attributes
+    ----------
+    bias_V : float  Bias across the bar [V]
+    length_cm : float  Distance between contacts L [cm]
+    electron_mobility_cm2_Vs : float  mu_n [cm^2 V^-1 s^-1]
+    hole_mobility_cm2_Vs : float  mu_p [cm^2 V^-1 s^-1]
+    """
+
+    bias_V: float
+    length_cm: float
+    electron_mobility_cm2_Vs: float
+    hole_mobility_cm2_Vs: float
+
+
+@dataclass(frozen=True)
+class Scenario:
+    """A validated scenario.
+
+    Attributes
+    ----------
+    title, notes : str
+    material, volume, traps, light, start, run, readout : the sections
+    source : str  File name the scenario came from (``"<string>"`` for text)
+    text : str  The TOML text as given
+    """
+
+    title: str
+    material: Material
+    volume: Volume
+    traps: tuple[Trap, ...] = ()
+    light: Light = field(default_factory=Light)
+    start: Start = field(default_factory=Start)
+    run: RunSettings = field(default_factory=RunSettings)
+    readout: Readout | None = None
+    notes: str = ""
+    source: str = "<string>"
+    text: str = ""
+
+    @property
+    def stem(self) -> str:
+        """File stem used for default output names."""
+        if self.source.startswith("<"):
+            return "scenario"
+        return Path(self.source).stem
+
+
+# --------------------------------------------------------------------------------------------
+# The schema: one table per section, one row per key
+# --------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class _Key:
+    kind: str  # "float", "int", "str", "list3"
+    required: bool = False
+    default: Any = None
+    lo: float | None = None  # lower bound
+    lo_open: bool = False  # True: value > lo, False: value >= lo
+    hi: float | None = None
+    choices: tuple[str, ...] = ()
+    pattern: str | None = None
+
+
+_F = lambda **kw: _Key("float", **kw)  # noqa: E731
+_I = lambda **kw: _Key("int", **kw)  # noqa: E731
+_S = lambda **kw: _Key("str", **kw)  # noqa: E731
+
+_TOP = {"title": _S(required=True), "notes": _S(default="")}
+_SECTIONS_ALLOWED = ("material", "volume", "traps", "light", "start", "run", "readout")
+
+_MATERIAL = {
+    "temperature_K": _F(required=True, lo=0.0, lo_open=True),
+    "intrinsic_density_cm3": _F(required=True, lo=0.0, lo_open=True),
+    "radiative_cm3_s": _F(default=0.0, lo=0.0),
+    "auger_electron_cm6_s": _F(default=0.0, lo=0.0),
+    "auger_hole_cm6_s": _F(default=0.0, lo=0.0),
+    "donors_cm3": _F(default=0.0, lo=0.0),
+    "acceptors_cm3": _F(default=0.0, lo=0.0),
+}
+_VOLUME = {
+    "size_nm": _Key("list3", lo=0.0, lo_open=True),
+    "volume_cm3": _F(lo=0.0, lo_open=True),
+    "surface_area_cm2": _F(lo=0.0, lo_open=True),
+}
+_TRAP = {
+    "label": _S(required=True, pattern=r"^[A-Za-z0-9_-]+$"),
+    "count": _I(lo=0),
+    "density_cm3": _F(lo=0.0),
+    "areal_density_cm2": _F(lo=0.0),
+    "energy_eV": _F(default=0.0),
+    "kind": _S(default="acceptor", choices=("acceptor", "donor")),
+    "electron_capture_cm3_s": _F(lo=0.0),
+    "hole_capture_cm3_s": _F(lo=0.0),
+    "electron_cross_section_cm2": _F(lo=0.0),
+    "hole_cross_section_cm2": _F(lo=0.0),
+    "thermal_velocity_cm_s": _F(lo=0.0, lo_open=True),
+}
+_LIGHT = {
+    "generation_cm3_s": _F(default=0.0, lo=0.0),
+    "waveform": _S(default="steady", choices=("steady", "off")),
+}
+_START = {"excess_pairs": _I(default=0, lo=0)}
+_RUN = {
+    "trajectories": _I(default=256, lo=1),
+    "duration_s": _F(default=1.0e-6, lo=0.0, lo_open=True),
+    "samples": _I(default=4096, lo=16),
+    "settle_s": _F(default=0.0, lo=0.0),
+    "seed": _I(default=1, lo=0),
+    "dopants": _S(default="rounded", choices=("rounded", "poisson")),
+}
+_READOUT = {
+    "bias_V": _F(required=True),
+    "length_cm": _F(required=True, lo=0.0, lo_open=True),
+    "electron_mobility_cm2_Vs": _F(required=True, lo=0.0),
+    "hole_mobility_cm2_Vs": _F(required=True, lo=0.0),
+}
+
+#: Every section's keys, by section name; ``traps`` rows apply to each ``[[traps]]`` entry.
+SCHEMA: dict[str, dict[str, _Key]] = {
+    "material": _MATERIAL,
+    "volume": _VOLUME,
+    "traps": _TRAP,
+    "light": _LIGHT,
+    "start": _START,
+    "run": _RUN,
+    "readout": _READOUT,
+}
+
+
+def _hint(key: str, allowed) -> str:
+    close = difflib.get_close_matches(key, list(allowed), n=1, cutoff=0.6)
+    if close:
+        return f" (did you mean '{close[0]}'?)"
+    return f" (allowed: {', '.join(sorted(allowed))})"
+
+
+def _fmt_bound(spec: _Key) -> str:
+    if spec.lo is None:
+        return ""
+    return f"> {spec.lo:g}" if spec.lo_open else f">= {spec.lo:g}"
+
+
+def _check_value(src: str, section: str, key: str, value: Any, spec: _Key) -> Any:
+    def fail(msg: str):
+        raise ScenarioError(src, section, key, msg)
+
+    if spec.kind == "float":
+        if isinstance(value, bool) or not isinstance(value, (int, float)):
+            fail(f"expected a number, got {type(value).__name__} {value!r}")
+        value = float(value)
+        if not math.isfinite(value):
+            fail(f"must be finite, got {value!r}")
+    elif spec.kind == "int":
+        if isinstance(value, bool) or not isinstance(value, int):
+            fail(f"expected an integer, got {type(value).__name__} {value!r}")
+    elif spec.kind == "str":
+        if not isinstance(value, str):
+            fail(f"expected a string, got {type(value).__name__} {value!r}")
+        if spec.choices and value not in spec.choices:
+            fail(f"must be one of {', '.join(repr(c) for c in spec.choices)}, got {value!r}")
+        if spec.pattern and not re.match(spec.pattern, value):
+            fail(f"{value!r} may hold only letters, digits, '_' and '-'")
+        return value
+    elif spec.kind == "list3":
+        if not isinstance(value, list) or len(value) != 3:
+            fail(f"expected a list of three edge lengths, got {value!r}")
+        out = []
+        for v in value:
+            if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v):
+                fail(f"expected numbers, got {v!r}")
+            if v <= 0:
+                fail(f"every edge must be > 0, got {v!r}")
+            out.append(float(v))
+        return tuple(out)
+    if spec.lo is not None:
+        bad = value <= spec.lo if spec.lo_open else value < spec.lo
+        if bad:
+            fail(f"must be {_fmt_bound(spec)}, got {value!r}")
+    return value
+
+
+def _read_table(src: str, section: str, table: Any, schema: dict[str, _Key]) -> dict[str, Any]:
+    """Check one table against its schema; return key -> value with defaults filled in."""
+    if not isinstance(table, dict):
+        raise ScenarioError(src, section, "", "expected a table")
+    for key in table:
+        if key not in schema:
+            raise ScenarioError(src, section, key, "unknown key" + _hint(key, schema))
+    out: dict[str, Any] = {}
+    for key, spec in schema.items():
+        if key in table:
+            out[key] = _check_value(src, section, key, table[key], spec)
+        elif spec.required:
+            raise ScenarioError(src, section, key, "missing required key")
+        else:
+            out[key] = spec.default
+    return out
+
+
+def _exactly_one(src, section, vals: dict, keys: tuple[str, ...], *, required=True) -> str | None:
+    given = [k for k in keys if vals.get(k) is not None]
+    if len(given) > 1:
+        raise ScenarioError(
+            src, section, given[1], f"give exactly one of {' / '.join(keys)}, not both "
+            f"{given[0]} and {given[1]}"
+        )
+    if not given:
+        if required:
+            raise ScenarioError(src, section, keys[0], f"give one of {' / '.join(keys)}")
+        return None
+    return given[0]
+
+
+def _box_surface_cm2(size_nm: tuple[float, float, float]) -> float:
+    a, b, c = (x * 1e-7 for x in size_nm)
+    return 2.0 * (a * b + b * c + a * c)
+
+
+def _parse_volume(src: str, table: Any) -> Volume:
+    vals = _read_table(src, "volume", table, _VOLUME)
+    which = _exactly_one(src, "volume", vals, ("size_nm", "volume_cm3"))
+    if which == "size_nm":
+        a, b, c = vals["size_nm"]
+        vol = a * b * c * 1e-21
+        area = vals["surface_area_cm2"] or _box_surface_cm2(vals["size_nm"])
+        return Volume(volume_cm3=vol, surface_area_cm2=area, size_nm=vals["size_nm"])
+    return Volume(volume_cm3=vals["volume_cm3"], surface_area_cm2=vals["surface_area_cm2"])
+
+
+def _parse_trap(src: str, index: int, table: Any, volume: Volume) -> Trap:
+    label = table.get("label") if isinstance(table, dict) else None
+    section = f"traps.{label}" if isinstance(label, str) and label else f"traps[{index}]"
+    vals = _read_table(src, section, table, _TRAP)
+    which = _exactly_one(src, section, vals, ("count", "density_cm3", "areal_density_cm2"))
+    if which == "areal_density_cm2" and volume.surface_area_cm2 is None:
+        raise ScenarioError(
+            src, section, "areal_density_cm2",
+            "needs a surface area: give [volume] size_nm or surface_area_cm2",
+        )
+    caps = {}
+    for carrier in ("electron", "hole"):
+        direct, xsec = f"{carrier}_capture_cm3_s", f"{carrier}_cross_section_cm2"
+        got = _exactly_one(src, section, vals, (direct, xsec))
+        if got == direct:
+            caps[carrier] = vals[direct]
+        else:
+            if vals["thermal_velocity_cm_s"] is None:
+                raise ScenarioError(
+                    src, section, "thermal_velocity_cm_s",
+                    f"{xsec} needs thermal_velocity_cm_s (c = sigma v_th)",
+                )
+            caps[carrier] = vals[xsec] * vals["thermal_velocity_cm_s"]
+    if vals["thermal_velocity_cm_s"] is not None and all(
+        vals[f"{c}_cross_section_cm2"] is None for c in ("electron", "hole")
+    ):
+        raise ScenarioError(
+            src, section, "thermal_velocity_cm_s",
+            "is used only with a cross section; it would be ignored here",
+        )
+    if caps["electron"] == 0.0 and caps["hole"] == 0.0:
+        raise ScenarioError(
+            src, section, "electron_capture_cm3_s",
+            "a trap level that captures neither electrons nor holes does nothing; remove it",
+        )
+    return Trap(
+        label=vals["label"],
+        count=vals["count"],
+        density_cm3=vals["density_cm3"],
+        areal_density_cm2=vals["areal_density_cm2"],
+        energy_eV=vals["energy_eV"],
+        kind=vals["kind"],
+        electron_capture_cm3_s=caps["electron"],
+        hole_capture_cm3_s=caps["hole"],
+    )
+
+
+def parse_scenario(data: dict[str, Any], *, source: str = "<string>", text: str = "") -> Scenario:
+    """Validate an already-parsed TOML document.
+
+    Parameters
+    ----------
+    data : dict
+        The document as returned by :func:`tomllib.loads`.
+    source : str
+        Name used in error messages [file name].
+    text : str
+        The TOML text, kept in the scenario and in output files.
+
+    Returns
+    -------
+    Scenario
+
+    Raises
+    ------
+    ScenarioError
+        On any unknown key, wrong type, value out of range or broken exactly-one-of rule.
+    """
+    src = source
+    allowed_top = set(_TOP) | set(_SECTIONS_ALLOWED)
+    for key, value in data.items():
+        if key not in allowed_top:
+            raise ScenarioError(src, "", key, "unknown key or section" + _hint(key, allowed_top))
+        if key in _SECTIONS_ALLOWED and key != "traps" and not isinstance(value, dict):
+            raise ScenarioError(src, key, "", "expected a table, e.g. [" + key + "]")
+    top = _read_table(src, "", {k: v for k, v in data.items() if k in _TOP}, _TOP)
+    if not top["title"].strip():
+        raise ScenarioError(src, "", "title", "must not be empty")
+    if "material" not in data:
+        raise ScenarioError(src, "material", "", "missing section")
+    if "volume" not in data:
+        raise ScenarioError(src, "volume", "", "missing section")
+    material = Material(**_read_table(src, "material", data["material"], _MATERIAL))
+    volume = _parse_volume(src, data["volume"])
+
+    traps_raw = data.get("traps", [])
+    if not isinstance(traps_raw, list):
+        raise ScenarioError(src, "traps", "", "expected an array of tables: [[traps]]")
+    traps = tuple(_parse_trap(src, i, t, volume) for i, t in enumerate(traps_raw))
+    seen: set[str] = set()
+    for trap in traps:
+        if trap.label in seen:
+            raise ScenarioError(src, f"traps.{trap.label}", "label", "duplicate trap label")
+        seen.add(trap.label)
+
+    light = Light(**_read_table(src, "light", data.get("light", {}), _LIGHT))
+    start = Start(**_read_table(src, "start", data.get("start", {}), _START))
+    run = RunSettings(**_read_table(src, "run", data.get("run", {}), _RUN))
+    readout = None
+    if "readout" in data:
+        readout = Readout(**_read_table(src, "readout", data["readout"], _READOUT))
+    return Scenario(
+        title=top["title"],
+        notes=top["notes"],
+        material=material,
+        volume=volume,
+        traps=traps,
+        light=light,
+        start=start,
+        run=run,
+        readout=readout,
+        source=source,
+        text=text,
+    )
+
+
+def load_scenario(path: str | Path | None = None, *, text: str | None = None) -> Scenario:
+    """Read and validate a scenario from a TOML file or from a TOML string.
+
+    Parameters
+    ----------
+    path : str or Path, optional
+        Scenario file.
+    text : str, optional
+        TOML text (give exactly one of ``path`` and ``text``).
+
+    Returns
+    -------
+    Scenario
+
+    Raises
+    ------
+    ScenarioError
+        Missing or unreadable file, text that is not TOML, or any invalid key.
+
+    Examples
+    --------
+    >>> s = load_scenario(text='''
+    ... title = "box"
+    ... [material]
+    ... temperature_K = 300.0
+    ... intrinsic_density_cm3 = 1e10
+    ... [volume]
+    ... volume_cm3 = 1e-15
+    ... ''')
+    >>> s.volume.volume_cm3
+    1e-15
+    """
+    if (path is None) == (text is None):
+        raise TypeError("give exactly one of path and text")
+    if path is not None:
+        source = str(path)
+        try:
+            text = Path(path).read_text(encoding="utf-8")
+        except FileNotFoundError:
+            raise ScenarioError(source, "", "", "no such file") from None
+        except (OSError, UnicodeDecodeError) as exc:
+            raise ScenarioError(source, "", "", f"cannot read the file ({exc})") from None
+    else:
+        source = "<string>"
+    try:
+        data = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise ScenarioError(source, "", "", f"not valid TOML ({exc})") from None
+    return parse_scenario(data, source=source, text=text)
+
+
+def set_key(data: dict[str, Any], dotted: str, value: Any, *, source: str = "<sweep>") -> None:
+    """Set ``section.key`` (or ``traps.<label>.key``) in a parsed TOML document, in place.
+
+    Used by parameter sweeps; the document must be validated again afterwards.
+
+    Raises
+    ------
+    ScenarioError
+        When the section, trap label or key does not exist in the format.
+    """
+    parts = dotted.split(".")
+    if len(parts) == 3 and parts[0] == "traps":
+        _, label, key = parts
+        if key not in _TRAP:
+            raise ScenarioError(source, f"traps.{label}", key, "unknown key" + _hint(key, _TRAP))
+        for trap in data.get("traps", []):
+            if trap.get("label") == label:
+                amount = ("count", "density_cm3", "areal_density_cm2")
+                if key in amount:  # the exactly-one-of rule: the swept form replaces the others
+                    for other in amount:
+                        trap.pop(other, None)
+                trap[key] = value
+                return
+        raise ScenarioError(source, f"traps.{label}", "label", "no trap level with this label")
+    if len(parts) != 2:
+        raise ScenarioError(source, "", dotted, "expected section.key or traps.<label>.key")
+    section, key = parts
+    if section not in SCHEMA or section == "traps":
+        raise ScenarioError(source, section, key, "unknown section" + _hint(section, SCHEMA))
+    if key not in SCHEMA[section]:
+        raise ScenarioError(source, section, key, "unknown key" + _hint(key, SCHEMA[section]))
+    table = data.setdefault(section, {})
+    if section == "volume":  # the exactly-one-of rule: a swept volume replaces the other form
+        for other in ("size_nm", "volume_cm3"):
+            if other != key and key in ("size_nm", "volume_cm3"):
+                table.pop(other, None)
+    table[key] = value
