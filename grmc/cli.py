@@ -1,0 +1,248 @@
+"""The command line: ``grmc <command> ...``.
+
+Only this module knows about argparse, exit codes and the terminal.  Each subcommand calls
+one public function and formats its result.  Heavy libraries (numba, xarray, matplotlib, dask)
+are imported inside the commands that need them, so ``grmc --help`` answers at once.
+
+Exit status: 0 success; 2 bad scenario or arguments (one message on stderr naming the file
+and the key, no traceback); 1 anything else; 130 interrupted (nothing written).
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import shlex
+import sys
+from pathlib import Path
+
+from . import __version__
+from .scenario import ScenarioError, load_scenario
+
+EXIT_OK, EXIT_FAIL, EXIT_USAGE, EXIT_INTERRUPTED = 0, 1, 2, 130
+DEMO_SCENARIO = "demo_pixel.toml"
+
+
+class UsageError(Exception):
+    """Bad arguments (exit status 2)."""
+
+
+def _positive_int(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a whole number, got {text!r}") from None
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"must be >= 1, got {value}")
+    return value
+
+
+def _nonneg_int(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a whole number, got {text!r}") from None
+    if value < 0:
+        raise argparse.ArgumentTypeError(f"must be >= 0, got {value}")
+    return value
+
+
+def _command_line(argv: list[str] | None) -> str:
+    args = sys.argv[1:] if argv is None else argv
+    return " ".join(["grmc", *(shlex.quote(a) for a in args)])
+
+
+def _default_output(scenario_path: str, suffix: str = "") -> Path:
+    return Path("outputs") / f"{Path(scenario_path).stem}{suffix}.nc"
+
+
+# ------------------------------------------------------------------------------ commands
+def cmd_inspect(args) -> int:
+    from .summary import format_summary, summarize
+
+    scenario = load_scenario(args.scenario)
+    info = summarize(scenario)
+    if args.json:
+        print(json.dumps(info, indent=2))
+    else:
+        print(format_summary(info))
+    return EXIT_OK
+
+
+def cmd_run(args) -> int:
+    from .dataset import save
+    from .report import format_run_table
+    from .simulate import run
+
+    scenario = load_scenario(args.scenario)
+    out = Path(args.output) if args.output else _default_output(args.scenario)
+    ds = run(scenario, trajectories=args.trajectories, seed=args.seed, workers=args.workers,
+             progress=None if not args.quiet else False, command=args.command_line)
+    save(ds, out)
+    if not args.quiet:
+        print(format_run_table(ds))
+    print(f"wrote {out}")
+    return EXIT_OK
+
+
+def cmd_plot(args) -> int:
+    from .plotting import plot_all
+
+    path = Path(args.file)
+    if not path.is_file():
+        raise UsageError(f"{path}: no such file")
+    outdir = Path(args.output) if args.output else path.parent
+    for p in plot_all(path, outdir):
+        print(f"wrote {p}")
+    return EXIT_OK
+
+
+def cmd_export(args) -> int:
+    from .dataset import load
+    from .export import export_csv, export_verilog_a
+
+    path = Path(args.file)
+    if not path.is_file():
+        raise UsageError(f"{path}: no such file")
+    ds = load(path)
+    quantity = args.quantity
+    if quantity is not None and quantity != "current":
+        if quantity not in [str(s) for s in ds["species"].values]:
+            names = ", ".join(["current", *map(str, ds["species"].values)])
+            raise UsageError(f"{path}: --quantity {quantity!r} is not in the file ({names})")
+    if quantity == "current" and "current_psd" not in ds:
+        raise UsageError(f"{path}: the file has no current (the scenario had no [readout])")
+    try:
+        if args.format == "csv":
+            written = export_csv(ds, args.output, quantity=quantity)
+        else:
+            written = export_verilog_a(ds, args.output, quantity=quantity,
+                                       interpolation=args.interpolation, source=args.source)
+    except ValueError as exc:
+        raise UsageError(f"{path}: {exc}") from None
+    if isinstance(written, (list, tuple)):
+        for w in written:
+            print(f"wrote {w}")
+    else:
+        print(f"wrote {written or args.output}")
+    return EXIT_OK
+
+
+def cmd_exact(args) -> int:
+    from .dataset import save
+    from .exact_output import exact_dataset
+
+    scenario = load_scenario(args.scenario)
+    out = Path(args.output) if args.output else _default_output(args.scenario, "_exact")
+    ds = exact_dataset(scenario, command=args.command_line)
+    save(ds, out)
+    print(f"exact solution on {int(ds.attrs['n_states'])} states, probability outside the "
+          f"truncation {float(ds['probability_outside']):.2e}")
+    print(f"wrote {out}")
+    return EXIT_OK
+
+
+def cmd_sweep(args) -> int:
+    from .sweep import parse_vary, run_sweep
+
+    scenario = load_scenario(args.scenario)
+    try:
+        varies = [parse_vary(v) for v in args.vary]
+    except ValueError as exc:
+        raise UsageError(f"--vary: {exc}") from None
+    out = Path(args.output) if args.output else _default_output(args.scenario, "_sweep")
+    path = run_sweep(scenario, varies, out, scheduler=args.scheduler, resume=args.resume,
+                     workers=args.workers, command=args.command_line)
+    print(f"wrote {path}")
+    return EXIT_OK
+
+
+def cmd_demo(args) -> int:
+    from .demo import run_demo
+
+    run_demo(Path(args.output), workers=args.workers, command=args.command_line)
+    return EXIT_OK
+
+
+# ------------------------------------------------------------------------------ parser
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="grmc",
+        description="Exact stochastic generation-recombination noise in nanoscale "
+        "semiconductor volumes: carriers counted one by one, spectra with confidence "
+        "intervals, beside the continuum and linear-noise answers.",
+    )
+    parser.add_argument("--version", action="version", version=f"grmc {__version__}")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND")
+    sub.required = True
+
+    p = sub.add_parser("run", help="run the ensemble and write the NetCDF file")
+    p.add_argument("scenario", help="scenario file (TOML)")
+    p.add_argument("-o", "--output", help="output file (default outputs/<stem>.nc)")
+    p.add_argument("--trajectories", type=_positive_int, help="override [run] trajectories")
+    p.add_argument("--seed", type=_nonneg_int, help="override [run] seed")
+    p.add_argument("--workers", type=_positive_int, help="threads (default: all cores)")
+    p.add_argument("-q", "--quiet", action="store_true", help="no table, no progress bar")
+    p.set_defaults(func=cmd_run)
+
+    p = sub.add_parser("inspect", help="validate a scenario and show what it implies")
+    p.add_argument("scenario", help="scenario file (TOML)")
+    p.add_argument("--json", action="store_true", help="print one JSON object")
+    p.set_defaults(func=cmd_inspect)
+
+    p = sub.add_parser("plot", help="PNG figures of an output file")
+    p.add_argument("file", help="output file (.nc) of run, exact or sweep")
+    p.add_argument("-o", "--output", help="folder for the PNGs (default: next to the file)")
+    p.set_defaults(func=cmd_plot)
+
+    p = sub.add_parser("export", help="a noise spectrum for circuit work (CSV or Verilog-A)")
+    p.add_argument("file", help="output file (.nc)")
+    p.add_argument("--format", required=True, choices=("csv", "verilog-a"))
+    p.add_argument("--quantity", help="'current' (default where present) or a species name")
+    p.add_argument("--interpolation", choices=("linear", "log"), default="linear",
+                   help="Verilog-A: noise_table (linear) or noise_table_log (log-log)")
+    p.add_argument("--source", choices=("mc", "fit", "lna"), default="mc",
+                   help="Verilog-A: which spectrum to tabulate")
+    p.add_argument("-o", "--output", required=True, help="file to write")
+    p.set_defaults(func=cmd_export)
+
+    p = sub.add_parser("exact", help="exact master-equation solution (small volumes)")
+    p.add_argument("scenario", help="scenario file (TOML)")
+    p.add_argument("-o", "--output", help="output file (default outputs/<stem>_exact.nc)")
+    p.set_defaults(func=cmd_exact)
+
+    p = sub.add_parser("sweep", help="a parameter sweep (exact or Monte Carlo per point)")
+    p.add_argument("scenario", help="scenario file (TOML)")
+    p.add_argument("--vary", action="append", required=True, metavar="KEY=START:STOP:N[:log]",
+                   help="section.key (or traps.<label>.key) and its range; repeatable")
+    p.add_argument("--scheduler", help="address of a running Dask scheduler")
+    p.add_argument("--resume", action="store_true", help="continue an interrupted sweep")
+    p.add_argument("--workers", type=_positive_int, help="local Dask workers (default: cores)")
+    p.add_argument("-o", "--output", help="output file (default outputs/<stem>_sweep.nc)")
+    p.set_defaults(func=cmd_sweep)
+
+    p = sub.add_parser("demo", help="run the bundled demo end to end into outputs/")
+    p.add_argument("-o", "--output", default="outputs", help="folder (default outputs/)")
+    p.add_argument("--workers", type=_positive_int, help="threads (default: all cores)")
+    p.set_defaults(func=cmd_demo)
+    return parser
+
+
+def main(argv: list[str] | None = None) -> int:
+    """Entry point of the ``grmc`` console script."""
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    args.command_line = _command_line(argv)
+    try:
+        return args.func(args)
+    except ScenarioError as exc:
+        print(f"grmc: error: {exc}", file=sys.stderr)
+        return EXIT_USAGE
+    except UsageError as exc:
+        print(f"grmc: error: {exc}", file=sys.stderr)
+        return EXIT_USAGE
+    except KeyboardInterrupt:
+        print("grmc: interrupted; no output written", file=sys.stderr)
+        return EXIT_INTERRUPTED
+    except BrokenPipeError:  # pragma: no cover - e.g. piped into head
+        return EXIT_OK

@@ -1,0 +1,230 @@
+"""The output file's contract: one registry of variables, build, validate, save, load.
+
+Every variable grmc writes is registered once in :data:`VARIABLES` with its dimensions,
+UDUNITS string and long name.  :func:`save` validates a Dataset against the registry before
+writing and writes atomically (a temporary file in the same folder, then a rename), so a
+failed or interrupted run never leaves a partial file where a good one is expected.
+:func:`load` validates again.
+
+Conventions followed: NetCDF Climate and Forecast (CF) Metadata Conventions 1.11.  CF
+standard names cover no semiconductor quantities, so no ``standard_name`` is set.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import os
+import sys
+import tempfile
+from dataclasses import dataclass
+from pathlib import Path
+from typing import TYPE_CHECKING
+
+from . import __version__
+
+if TYPE_CHECKING:  # pragma: no cover
+    import xarray as xr
+
+__all__ = ["Var", "VARIABLES", "COORDINATES", "OutputError", "finish", "validate", "save", "load"]
+
+
+class OutputError(ValueError):
+    """A Dataset does not follow the output contract."""
+
+
+@dataclass(frozen=True)
+class Var:
+    """One registered variable: dims, UDUNITS units, long name, CF cell_methods."""
+
+    dims: tuple[str, ...]
+    units: str
+    long_name: str
+    cell_methods: str | None = None
+
+
+COORDINATES: dict[str, Var] = {
+    "t": Var(("t",), "s", "time since the end of settling"),
+    "species": Var(("species",), "1", "carrier species"),
+    "frequency": Var(("frequency",), "Hz", "frequency (one-sided)"),
+    "channel": Var(("channel",), "1", "event channel"),
+    "realization": Var(("realization",), "1", "trajectory index in the ensemble"),
+    "count_value": Var(("count_value",), "1", "number of particles in the volume"),
+    "component": Var(("component",), "1", "Lorentzian component index"),
+    "sweep": Var(("sweep",), "1", "sweep point index"),
+}
+
+_ENS = "realization: mean"
+VARIABLES: dict[str, Var] = {
+    "count_mean": Var(("species", "t"), "1", "ensemble mean of the count", _ENS),
+    "count_var": Var(("species", "t"), "1", "ensemble variance of the count (ddof = 1)",
+                     "realization: variance"),
+    "count_continuum": Var(("species", "t"), "1",
+                           "continuum rate equations from the ensemble mean state at t = 0"),
+    "stationary_mean": Var(("species",), "1", "time-weighted mean count over the window",
+                           "t: mean realization: mean"),
+    "stationary_mean_stderr": Var(("species",), "1",
+                                  "standard error of the time-weighted mean count"),
+    "stationary_var": Var(("species",), "1",
+                          "time-weighted variance of the count about the pooled mean",
+                          "t: variance realization: mean"),
+    "stationary_var_stderr": Var(("species",), "1",
+                                 "standard error of the time-weighted variance"),
+    "steady_continuum": Var(("species",), "1", "continuum steady-state count"),
+    "var_lna": Var(("species",), "1", "linear-noise variance of the count"),
+    "relaxation_time_lna": Var(("mode",), "s", "linear-noise relaxation time"),
+    "psd": Var(("species", "frequency"), "Hz-1",
+               "one-sided power spectral density of the count fluctuation", _ENS),
+    "psd_low": Var(("species", "frequency"), "Hz-1", "lower end of the 95 % interval of psd"),
+    "psd_high": Var(("species", "frequency"), "Hz-1", "upper end of the 95 % interval of psd"),
+    "psd_lna": Var(("species", "frequency"), "Hz-1",
+                   "linear-noise one-sided power spectral density of the count"),
+    "events": Var(("channel",), "1", "events in the window, all trajectories together"),
+    "event_rate": Var(("channel",), "s-1", "mean events per second per trajectory", _ENS),
+    "current_mean": Var((), "A", "mean readout current", "t: mean realization: mean"),
+    "current_psd": Var(("frequency",), "A2 Hz-1",
+                       "one-sided power spectral density of the readout current", _ENS),
+    "current_psd_low": Var(("frequency",), "A2 Hz-1",
+                           "lower end of the 95 % interval of current_psd"),
+    "current_psd_high": Var(("frequency",), "A2 Hz-1",
+                            "upper end of the 95 % interval of current_psd"),
+    "current_psd_lna": Var(("frequency",), "A2 Hz-1",
+                           "linear-noise one-sided power spectral density of the current"),
+    "count_histogram": Var(("species", "count_value"), "1",
+                           "time-weighted probability of each count over the window", _ENS),
+    "donors": Var(("realization",), "1", "donors in the volume of each trajectory"),
+    "acceptors": Var(("realization",), "1", "acceptors in the volume of each trajectory"),
+    "trap_count": Var(("realization", "trap_level"), "1", "traps of each level per trajectory"),
+    "trajectory_mean": Var(("realization", "species"), "1",
+                           "time-weighted mean count of each trajectory", "t: mean"),
+    "plateau": Var(("species",), "Hz-1", "low-frequency plateau of the fitted Lorentzian"),
+    "plateau_stderr": Var(("species",), "Hz-1", "standard error of plateau"),
+    "corner_frequency": Var(("species",), "Hz", "corner frequency of the fitted Lorentzian"),
+    "corner_frequency_stderr": Var(("species",), "Hz", "standard error of corner_frequency"),
+    "tau_spectrum": Var(("species",), "s", "time constant 1/(2 pi f_c) from the spectrum"),
+    "current_plateau": Var((), "A2 Hz-1", "low-frequency plateau of the current spectrum"),
+    "current_corner_frequency": Var((), "Hz", "corner frequency of the current spectrum"),
+    "current_tau_spectrum": Var((), "s", "time constant 1/(2 pi f_c) of the current spectrum"),
+    "probability_outside": Var((), "1", "probability mass outside the truncated state space"),
+}
+
+
+def register(name: str, var: Var) -> None:
+    """Add a variable to the registry (for extensions; names must be new)."""
+    if name in VARIABLES or name in COORDINATES:
+        raise ValueError(f"variable {name!r} is registered already")
+    VARIABLES[name] = var
+
+
+def _spec(name: str) -> Var | None:
+    return VARIABLES.get(name) or COORDINATES.get(name)
+
+
+def finish(ds: xr.Dataset, *, title: str, scenario_toml: str, command: str | None = None,
+           **attrs) -> xr.Dataset:
+    """Attach units, long names, cell methods and the CF global attributes.
+
+    Parameters
+    ----------
+    ds : xarray.Dataset  Variables named as in :data:`VARIABLES`
+    title : str  Scenario title
+    scenario_toml : str  The scenario text as run
+    command : str, optional  Command line for ``history`` (default: ``sys.argv``)
+    **attrs : further global attributes (``seed``, ``trajectories``, ``volume_cm3``...)
+
+    Returns
+    -------
+    xarray.Dataset  (a new object)
+    """
+    ds = ds.copy()
+    for name in list(ds.variables):
+        spec = _spec(str(name))
+        if spec is None:
+            continue
+        var = ds[name]
+        var.attrs["units"] = spec.units
+        var.attrs["long_name"] = spec.long_name
+        if spec.cell_methods and name in ds.data_vars:
+            var.attrs["cell_methods"] = spec.cell_methods
+    for name in ds.coords:
+        ds[name].encoding["_FillValue"] = None
+    for name in ds.data_vars:
+        if ds[name].dtype.kind in "iu":
+            ds[name].encoding["_FillValue"] = None
+    now = _dt.datetime.now(_dt.timezone.utc).replace(microsecond=0).isoformat()
+    if command is None:
+        command = " ".join(["grmc", *sys.argv[1:]]) if sys.argv else "grmc"
+    ds.attrs.update(
+        {
+            "Conventions": "CF-1.11",
+            "title": title,
+            "source": f"grmc {__version__}",
+            "history": f"{now} {command}",
+            "scenario_toml": scenario_toml,
+        }
+    )
+    ds.attrs.update({k: v for k, v in attrs.items() if v is not None})
+    return ds
+
+
+def validate(ds: xr.Dataset, *, required: tuple[str, ...] = ()) -> None:
+    """Check a Dataset against the registry.
+
+    Raises
+    ------
+    OutputError
+        A required variable is missing, or a registered one has other dims or units.
+    """
+    for name in required:
+        if name not in ds.variables:
+            raise OutputError(f"output variable {name!r} is missing")
+    for name in ds.variables:
+        spec = _spec(str(name))
+        if spec is None:
+            continue
+        var = ds[name]
+        if name not in ("sweep",) and "sweep" in var.dims:
+            dims = tuple(d for d in var.dims if d != "sweep")
+        else:
+            dims = var.dims
+        if tuple(dims) != spec.dims and name in VARIABLES:
+            raise OutputError(f"variable {name!r} has dims {var.dims}, expected {spec.dims}")
+        if var.attrs.get("units") != spec.units:
+            raise OutputError(f"variable {name!r} has units {var.attrs.get('units')!r}, "
+                              f"expected {spec.units!r}")
+    for key in ("Conventions", "title", "source", "history"):
+        if key not in ds.attrs:
+            raise OutputError(f"global attribute {key!r} is missing")
+
+
+def save(ds: xr.Dataset, path: str | Path, *, required: tuple[str, ...] = ()) -> Path:
+    """Validate, then write NetCDF-4 atomically (temporary file + rename).
+
+    Returns
+    -------
+    Path  The file written.
+    """
+    validate(ds, required=required)
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part", dir=path.parent)
+    os.close(fd)
+    try:
+        ds.to_netcdf(tmp, format="NETCDF4", engine="netcdf4")
+        os.replace(tmp, path)
+    except BaseException:
+        try:
+            os.unlink(tmp)
+        except FileNotFoundError:
+            pass
+        raise
+    return path
+
+
+def load(path: str | Path) -> xr.Dataset:
+    """Open a grmc output file (fully loaded into memory, file closed) and validate it."""
+    import xarray as xr
+
+    with xr.open_dataset(path, engine="netcdf4") as ds:
+        ds = ds.load()
+    validate(ds)
+    return ds

@@ -1,0 +1,86 @@
+"""Printed summaries of an output Dataset (the table ``grmc run`` prints)."""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+__all__ = ["format_run_table", "FLAG_SIGMAS"]
+
+#: A Monte Carlo value is flagged when it differs from the continuum or linear-noise value by
+#: more than this many standard errors (two-sided p ~ 0.003 for a normal estimator).
+FLAG_SIGMAS = 3.0
+
+
+def _g(x: float, digits: int = 4) -> str:
+    x = float(x)
+    if not math.isfinite(x):
+        return "-"
+    return f"{x:.{digits}g}"
+
+
+def _flag(value: float, reference: float, stderr: float) -> str:
+    if not (math.isfinite(value) and math.isfinite(reference)):
+        return ""
+    if math.isfinite(stderr) and stderr > 0:
+        z = (value - reference) / stderr
+        return f"{z:+.1f}σ" + (" !" if abs(z) > FLAG_SIGMAS else "")
+    return "" if value == reference else "!"
+
+
+def format_run_table(ds) -> str:
+    """Per species: Monte Carlo mean ± standard error against the continuum, variance
+    against the linear-noise value, and a flag (``!``) where they differ by more than
+    :data:`FLAG_SIGMAS` standard errors; then the spectral time constants and the current.
+
+    Parameters
+    ----------
+    ds : xarray.Dataset  Output of :func:`grmc.simulate.run`
+
+    Returns
+    -------
+    str
+    """
+    n = int(ds.attrs.get("trajectories", 0))
+    lines = [f"{ds.attrs.get('title', '')}  ({n} trajectories, seed {ds.attrs.get('seed')})"]
+    head = (f"  {'species':<20}{'MC mean':>12}{'± s.e.':>10}{'continuum':>12}{'':>9}"
+            f"{'MC var':>12}{'± s.e.':>10}{'LNA var':>12}{'':>9}")
+    lines.append(head)
+    for i, s in enumerate(ds["species"].values):
+        m = float(ds["stationary_mean"][i])
+        me = float(ds["stationary_mean_stderr"][i])
+        c = float(ds["steady_continuum"][i])
+        v = float(ds["stationary_var"][i])
+        ve = float(ds["stationary_var_stderr"][i]) if "stationary_var_stderr" in ds else np.nan
+        lv = float(ds["var_lna"][i])
+        lines.append(
+            f"  {str(s):<20}{_g(m, 6):>12}{_g(me, 2):>10}{_g(c, 6):>12}{_flag(m, c, me):>9}"
+            f"{_g(v, 5):>12}{_g(ve, 2):>10}{_g(lv, 5):>12}{_flag(v, lv, ve):>9}"
+        )
+    lines.append(f"  ('!': differs by more than {FLAG_SIGMAS:g} standard errors; in a small "
+                 "volume the continuum answer is expected to be off)")
+    if "tau_spectrum" in ds:
+        parts = []
+        for i, s in enumerate(ds["species"].values):
+            tau = float(ds["tau_spectrum"][i])
+            if math.isfinite(tau):
+                parts.append(f"{s} {_g(tau, 3)} s")
+        if parts:
+            lines.append("  tau from the spectra (1/(2 pi f_c)): " + ", ".join(parts))
+    if "relaxation_time_lna" in ds and ds["relaxation_time_lna"].size:
+        times = ", ".join(_g(t, 3) for t in ds["relaxation_time_lna"].values)
+        lines.append(f"  linear-noise relaxation times:      {times} s")
+    if "current_mean" in ds:
+        i_mean = float(ds["current_mean"])
+        lines.append(f"  current: mean {_g(i_mean, 5)} A")
+        if "current_plateau" in ds and math.isfinite(float(ds["current_plateau"])):
+            s0 = float(ds["current_plateau"])
+            fc = float(ds["current_corner_frequency"])
+            lines.append(f"           noise plateau {_g(s0, 3)} A^2/Hz = "
+                         f"{_g(math.sqrt(s0), 3)} A/sqrt(Hz), corner {_g(fc, 3)} Hz")
+    if "events_total" in ds.attrs and ds.attrs.get("wall_time_s", 0) > 0:
+        ev = int(ds.attrs["events_total"])
+        wall = float(ds.attrs["wall_time_s"])
+        lines.append(f"  {ev:.3g} events in {wall:.2f} s ({ev / wall / 1e6:.1f} M events/s)")
+    return "\n".join(lines)

@@ -1,0 +1,410 @@
+"""``grmc run``: scenario -> model -> ensemble of exact trajectories -> Dataset.
+
+This module glues the pieces together: it builds the model (per trajectory when dopant
+counts are drawn), starts every trajectory from the integer neutral state nearest to the
+continuum steady state, runs the compiled engine over chunks of trajectories, reduces each
+trajectory at once (so memory does not grow with the ensemble), and assembles the output
+Dataset with the continuum and linear-noise answers beside the Monte Carlo ones.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import threading
+import time
+from dataclasses import dataclass, field
+from typing import TYPE_CHECKING
+
+import numpy as np
+
+from . import continuum, spectra
+from .dataset import finish
+from .engine.ensemble import Cancelled, chunk_bounds, map_chunks
+from .model import Counts, Model, build_model, draw_counts, nominal_counts
+from .scenario import Scenario
+
+if TYPE_CHECKING:  # pragma: no cover
+    import xarray as xr
+
+__all__ = ["run", "OVERSAMPLE", "Prepared", "prepare", "start_state"]
+
+#: Fine bins per output sample interval recorded by the engine for the spectra (see
+#: :func:`grmc.spectra.periodogram` for why the spectrum is estimated at a finer rate).
+OVERSAMPLE = 8
+#: Batches used for the standard error when the ensemble has a single trajectory.
+N_BATCHES = 16
+#: Largest span of count values kept in the stationary histogram.
+MAX_HISTOGRAM_SPAN = 4096
+#: Stream purposes spawned from (seed, trajectory): 0 the event engine, 1 dopant draws.
+PURPOSE_ENGINE, PURPOSE_DOPANTS = 0, 1
+
+
+def start_state(model: Model) -> np.ndarray:
+    """The integer neutral state nearest to the continuum steady state [count]."""
+    return model.nearest_neutral_state(continuum.steady_state(model))
+
+
+@dataclass
+class Prepared:
+    """A model with the plain arrays the kernel takes and its start state."""
+
+    model: Model
+    arrays: tuple
+    x0: np.ndarray
+    channel_map: np.ndarray  # this model's channel index -> index in the full channel list
+
+
+class _ModelCache:
+    """Models by dopant/trap counts (a population draws many devices with equal counts)."""
+
+    def __init__(self, scenario: Scenario, all_names: tuple[str, ...]):
+        self.scenario = scenario
+        self.index = {name: i for i, name in enumerate(all_names)}
+        self.lock = threading.Lock()
+        self.cache: dict[Counts, Prepared] = {}
+
+    def get(self, counts: Counts) -> Prepared:
+        with self.lock:
+            hit = self.cache.get(counts)
+        if hit is not None:
+            return hit
+        prepared = prepare(build_model(self.scenario, counts=counts), self.index)
+        with self.lock:
+            self.cache[counts] = prepared
+        return prepared
+
+
+def prepare(model: Model, index: dict[str, int] | None = None) -> Prepared:
+    """Kernel arrays, start state and channel map of one model."""
+    from .engine.kernels import kernel_arrays
+
+    if index is None:
+        index = {name: i for i, name in enumerate(model.channel_names)}
+    cmap = np.array([index[n] for n in model.channel_names], dtype=np.int64)
+    return Prepared(model, kernel_arrays(model), start_state(model), cmap)
+
+
+def _all_channel_names(scenario: Scenario, counts: Counts) -> tuple[str, ...]:
+    """Channel names of the scenario with every trap level present (population runs)."""
+    full = dataclasses.replace(counts, traps=tuple(max(t, 1) for t in counts.traps))
+    return build_model(scenario, counts=full).channel_names
+
+
+@dataclass
+class _Acc:
+    """Reductions of one chunk of trajectories."""
+
+    n: int = 0
+    sum_x: np.ndarray | None = None
+    sum_x2: np.ndarray | None = None
+    events: np.ndarray | None = None
+    psd: np.ndarray | None = None
+    current_psd: np.ndarray | None = None
+    hist: dict = field(default_factory=dict)
+    traj: list = field(default_factory=list)  # (index, mean, meansq, batch means, counts)
+    n_events: int = 0
+
+
+def run(
+    scenario: Scenario,
+    *,
+    trajectories: int | None = None,
+    seed: int | None = None,
+    workers: int | None = None,
+    progress: bool | None = None,
+    command: str | None = None,
+) -> xr.Dataset:
+    """Run the ensemble of a scenario and return the output Dataset.
+
+    Parameters
+    ----------
+    scenario : Scenario
+    trajectories : int, optional  Override ``[run] trajectories``
+    seed : int, optional  Override ``[run] seed``
+    workers : int, optional  Threads (default: all cores); the data do not depend on it
+    progress : bool, optional  Progress bar: True, False, or None (only on a terminal)
+    command : str, optional  Command line recorded in ``history``
+
+    Returns
+    -------
+    xarray.Dataset  The variables of the output contract (see :mod:`grmc.dataset`).
+
+    Raises
+    ------
+    KeyboardInterrupt
+        When interrupted; nothing is returned or written.
+    """
+    import xarray as xr
+
+    from .engine.kernels import simulate as simulate_trajectory
+    from .engine.rng import stream_state
+
+    changes = {}
+    if trajectories is not None:
+        changes["trajectories"] = int(trajectories)
+    if seed is not None:
+        changes["seed"] = int(seed)
+    if changes:
+        scenario = dataclasses.replace(scenario, run=dataclasses.replace(scenario.run, **changes))
+    rs = scenario.run
+    n_traj, n_samples, duration = rs.trajectories, rs.samples, rs.duration_s
+    poisson = rs.dopants == "poisson"
+
+    counts0 = nominal_counts(scenario)
+    names = _all_channel_names(scenario, counts0)
+    cache = _ModelCache(scenario, names)
+    base = cache.get(counts0)
+    model0 = base.model
+    S = model0.n_species
+    ref = base.x0.astype(np.float64)  # shift for numerically safe sums of squares
+    excess = np.zeros(S, dtype=np.int64)
+    excess[0] = excess[1] = scenario.start.excess_pairs
+    segments = spectra.choose_segments(n_traj, n_samples)
+    dt_fine = duration / (n_samples * OVERSAMPLE)
+    readout = scenario.readout
+    a_e, a_h = spectra.current_scale(readout) if readout is not None else (0.0, 0.0)
+
+    def work(chunk: range, cancel: threading.Event) -> _Acc:
+        acc = _Acc()
+        for i in chunk:
+            if cancel.is_set():
+                raise Cancelled
+            if poisson:
+                rng = np.random.default_rng(np.random.SeedSequence(rs.seed,
+                                                                   spawn_key=(i, PURPOSE_DOPANTS)))
+                prep = cache.get(draw_counts(scenario, rng))
+            else:
+                prep = base
+            res = simulate_trajectory(
+                *prep.arrays,
+                x0=prep.x0,
+                rng_state=stream_state(rs.seed, i, purpose=PURPOSE_ENGINE),
+                settle_s=rs.settle_s,
+                excess=excess,
+                duration_s=duration,
+                n_samples=n_samples,
+                oversample=OVERSAMPLE,
+            )
+            _reduce_one(acc, i, res, prep, ref, dt_fine, segments, a_e, a_h, len(names),
+                        readout is not None)
+        return acc
+
+    t0 = time.perf_counter()
+    parts = map_chunks(work, chunk_bounds(n_traj), workers=workers, progress=progress)
+    wall = time.perf_counter() - t0
+    acc = _combine(parts)
+
+    # ------------------------------------------------------------ ensemble statistics
+    n = acc.n
+    mean_t = acc.sum_x / n + ref
+    var_t = ((acc.sum_x2 - acc.sum_x**2 / n) / (n - 1)) if n > 1 else np.full_like(mean_t, np.nan)
+    acc.traj.sort(key=lambda row: row[0])
+    tmean = np.array([row[1] for row in acc.traj])
+    tmsq = np.array([row[2] for row in acc.traj])
+    st_mean = tmean.mean(axis=0)
+    st_var = tmsq.mean(axis=0) - st_mean**2
+    per_var = tmsq - 2.0 * st_mean * tmean + st_mean**2  # each trajectory's about the pooled
+    if n > 1:
+        st_err = tmean.std(axis=0, ddof=1) / np.sqrt(n)
+        var_err = per_var.std(axis=0, ddof=1) / np.sqrt(n)
+    else:
+        batches = acc.traj[0][3]
+        st_err = batches.std(axis=0, ddof=1) / np.sqrt(len(batches))
+        var_err = np.full(S, np.nan)
+
+    # ------------------------------------------------------------ continuum and noise theory
+    ss = continuum.steady_state(model0)
+    lna = continuum.lna(model0, x=ss)
+    t = np.arange(n_samples) * (duration / n_samples)
+    x_cont = continuum.transient(model0, mean_t[:, 0], t).T
+    freqs = spectra.frequencies(n_samples, duration, segments=segments)
+    smat = continuum.lna_psd(model0, freqs, x=ss)
+    psd_lna = np.real(np.einsum("iif->if", smat))
+
+    k_total = n * segments
+    psd = acc.psd / n
+    psd_low, psd_high = spectra.welch_interval(psd, k_total)
+
+    species = list(model0.species)
+    data = {
+        "count_mean": (("species", "t"), mean_t.T),
+        "count_var": (("species", "t"), var_t.T),
+        "count_continuum": (("species", "t"), x_cont),
+        "stationary_mean": (("species",), st_mean),
+        "stationary_mean_stderr": (("species",), st_err),
+        "stationary_var": (("species",), st_var),
+        "stationary_var_stderr": (("species",), var_err),
+        "steady_continuum": (("species",), ss),
+        "var_lna": (("species",), np.diag(lna.covariance).copy()),
+        "relaxation_time_lna": (("mode",), np.asarray(lna.relaxation_times, dtype=float)),
+        "psd": (("species", "frequency"), psd),
+        "psd_low": (("species", "frequency"), psd_low),
+        "psd_high": (("species", "frequency"), psd_high),
+        "psd_lna": (("species", "frequency"), psd_lna),
+        "events": (("channel",), acc.events),
+        "event_rate": (("channel",), acc.events / (n * duration)),
+        "trajectory_mean": (("realization", "species"), tmean),
+    }
+    fits = [spectra.analyse_spectrum(freqs, psd[s], psd_low[s], psd_high[s], k_total)
+            for s in range(S)]
+    data.update(_fit_vars(fits, prefix="", dims=("species",)))
+
+    if readout is not None:
+        cur_psd = acc.current_psd / n
+        c_low, c_high = spectra.welch_interval(cur_psd, k_total)
+        data["current_mean"] = ((), float(a_e * st_mean[0] + a_h * st_mean[1]))
+        data["current_psd"] = (("frequency",), cur_psd)
+        data["current_psd_low"] = (("frequency",), c_low)
+        data["current_psd_high"] = (("frequency",), c_high)
+        data["current_psd_lna"] = (("frequency",), spectra.current_psd_from_matrix(smat, a_e, a_h))
+        cfit = spectra.analyse_spectrum(freqs, cur_psd, c_low, c_high, k_total)
+        data.update(_fit_vars([cfit], prefix="current_", dims=()))
+
+    hist = _histogram(acc.hist, S)
+    coords = {
+        "t": ("t", t),
+        "species": ("species", np.array(species, dtype=object)),
+        "frequency": ("frequency", freqs),
+        "channel": ("channel", np.array(names, dtype=object)),
+        "realization": ("realization", np.arange(n, dtype=np.int64)),
+    }
+    if hist is not None:
+        values, probs = hist
+        data["count_histogram"] = (("species", "count_value"), probs)
+        coords["count_value"] = ("count_value", values)
+    if poisson:
+        cnt = [row[4] for row in acc.traj]
+        data["donors"] = (("realization",), np.array([c.donors for c in cnt], dtype=np.int64))
+        data["acceptors"] = (("realization",), np.array([c.acceptors for c in cnt],
+                                                        dtype=np.int64))
+        if scenario.traps:
+            data["trap_count"] = (("realization", "trap_level"),
+                                  np.array([c.traps for c in cnt], dtype=np.int64))
+            coords["trap_level"] = ("trap_level",
+                                    np.array([tr.label for tr in scenario.traps], dtype=object))
+
+    ds = xr.Dataset(data, coords=coords)
+    attrs = {
+        "seed": int(rs.seed),
+        "trajectories": int(n),
+        "volume_cm3": float(scenario.volume.volume_cm3),
+        "duration_s": float(duration),
+        "settle_s": float(rs.settle_s),
+        "samples": int(n_samples),
+        "dopants": rs.dopants,
+        "psd_segments_per_trajectory": int(segments),
+        "psd_oversample": int(OVERSAMPLE),
+        "events_total": int(acc.n_events),
+        "wall_time_s": float(wall),
+        "donors_nominal": int(counts0.donors),
+        "acceptors_nominal": int(counts0.acceptors),
+        "conserved_charge": int(model0.charge),
+    }
+    if readout is not None:
+        attrs.update({
+            "readout_bias_V": readout.bias_V,
+            "readout_length_cm": readout.length_cm,
+            "readout_electron_mobility_cm2_Vs": readout.electron_mobility_cm2_Vs,
+            "readout_hole_mobility_cm2_Vs": readout.hole_mobility_cm2_Vs,
+        })
+    for tr, total in zip(scenario.traps, counts0.traps):
+        attrs[f"trap_count_{tr.label}"] = int(total)
+    return finish(ds, title=scenario.title, scenario_toml=scenario.text, command=command, **attrs)
+
+
+def _reduce_one(acc: _Acc, i: int, res, prep: Prepared, ref: np.ndarray, dt_fine: float,
+                segments: int, a_e: float, a_h: float, n_channels: int, current: bool) -> None:
+    """Fold one trajectory into a chunk's reductions."""
+    x = res.samples.astype(np.float64) - ref
+    duration = dt_fine * res.bins.shape[0]
+    if acc.n == 0:
+        acc.sum_x = np.zeros_like(x)
+        acc.sum_x2 = np.zeros_like(x)
+        acc.events = np.zeros(n_channels, dtype=np.int64)
+    acc.n += 1
+    acc.sum_x += x
+    acc.sum_x2 += x * x
+    np.add.at(acc.events, prep.channel_map, res.events)
+    acc.n_events += int(res.events.sum())
+    _, pxx = spectra.periodogram(res.bins, dt_fine, oversample=OVERSAMPLE, segments=segments)
+    acc.psd = pxx if acc.psd is None else acc.psd + pxx
+    if current:
+        i_bins = a_e * res.bins[:, 0] + a_h * res.bins[:, 1]
+        _, pii = spectra.periodogram(i_bins, dt_fine, oversample=OVERSAMPLE, segments=segments)
+        acc.current_psd = pii if acc.current_psd is None else acc.current_psd + pii
+    batches = np.array([b.mean(axis=0) for b in np.array_split(res.bins, N_BATCHES)])
+    acc.traj.append((i, res.integ / duration, res.integ2 / duration, batches,
+                     prep.model.counts))
+    for s in range(res.samples.shape[1]):
+        col = res.samples[:, s]
+        lo = int(col.min())
+        h = np.bincount(col - lo)
+        prev = acc.hist.get(s)
+        if prev is None:
+            acc.hist[s] = (lo, h)
+        else:
+            acc.hist[s] = _add_hist(prev, (lo, h))
+
+
+def _add_hist(a, b):
+    lo = min(a[0], b[0])
+    hi = max(a[0] + len(a[1]), b[0] + len(b[1]))
+    out = np.zeros(hi - lo, dtype=np.int64)
+    out[a[0] - lo:a[0] - lo + len(a[1])] += a[1]
+    out[b[0] - lo:b[0] - lo + len(b[1])] += b[1]
+    return lo, out
+
+
+def _combine(parts: list[_Acc]) -> _Acc:
+    """Combine chunk reductions in chunk order (so sums do not depend on the workers)."""
+    out = _Acc()
+    for p in parts:
+        if p.n == 0:
+            continue
+        if out.n == 0:
+            out = dataclasses.replace(p, traj=list(p.traj), hist=dict(p.hist))
+            continue
+        out.n += p.n
+        out.sum_x = out.sum_x + p.sum_x
+        out.sum_x2 = out.sum_x2 + p.sum_x2
+        out.events = out.events + p.events
+        out.psd = out.psd + p.psd
+        if p.current_psd is not None:
+            out.current_psd = out.current_psd + p.current_psd
+        out.traj.extend(p.traj)
+        out.n_events += p.n_events
+        for s, h in p.hist.items():
+            out.hist[s] = _add_hist(out.hist[s], h)
+    return out
+
+
+def _histogram(hist: dict, n_species: int):
+    """Common count axis and probabilities per species, or None when the span is too wide."""
+    if not hist:
+        return None
+    lo = min(h[0] for h in hist.values())
+    hi = max(h[0] + len(h[1]) for h in hist.values())
+    if hi - lo > MAX_HISTOGRAM_SPAN:
+        return None
+    probs = np.zeros((n_species, hi - lo))
+    for s, (start, counts) in hist.items():
+        probs[s, start - lo:start - lo + len(counts)] = counts / counts.sum()
+    return np.arange(lo, hi, dtype=np.int64), probs
+
+
+def _fit_vars(fits, *, prefix: str, dims: tuple[str, ...]) -> dict:
+    """Lorentzian fit results as data variables (NaN where no corner was resolved)."""
+    def arr(attr):
+        vals = [getattr(f, attr, np.nan) for f in fits]
+        vals = [np.nan if v is None else float(v) for v in vals]
+        return vals[0] if not dims else np.array(vals)
+
+    out = {
+        f"{prefix}plateau": (dims, arr("plateau")),
+        f"{prefix}corner_frequency": (dims, arr("corner_frequency")),
+        f"{prefix}tau_spectrum": (dims, arr("tau")),
+    }
+    if dims:
+        out[f"{prefix}plateau_stderr"] = (dims, arr("plateau_stderr"))
+        out[f"{prefix}corner_frequency_stderr"] = (dims, arr("corner_frequency_stderr"))
+    return out

@@ -1,0 +1,146 @@
+"""``grmc inspect``: what a scenario means before anything is simulated.
+
+Derived counts, the continuum steady state, linear-noise variances, time scales and the
+expected cost of a run, with warnings where the continuum answer cannot be trusted (mean
+counts below about 10) or where a run would be too long (more than about 1e10 events).
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from . import continuum
+from .model import build_model, nominal_counts, trap_means
+from .scenario import Scenario
+
+__all__ = ["summarize", "format_summary", "FEW_CARRIERS", "TOO_MANY_EVENTS"]
+
+#: Below this mean count a continuum answer is not to be trusted (common practice).
+FEW_CARRIERS = 10.0
+#: Above this many events a run is too long to be practical on one machine.
+TOO_MANY_EVENTS = 1.0e10
+#: Rounding a density to a count may move it by this fraction before we warn.
+ROUNDING_TOLERANCE = 0.05
+
+
+def summarize(scenario: Scenario) -> dict:
+    """Everything ``grmc inspect`` reports, as a JSON-ready dict.
+
+    Returns
+    -------
+    dict with keys ``title``, ``volume_cm3``, ``species``, ``counts``, ``channels``,
+    ``steady_continuum`` and ``var_lna`` (by species [count], [count^2]),
+    ``relaxation_times_s``, ``event_rate_per_trajectory_s`` [1/s], ``expected_events``,
+    ``warnings`` (list of str).
+    """
+    model = build_model(scenario)
+    counts = nominal_counts(scenario)
+    warnings: list[str] = []
+    vol = scenario.volume.volume_cm3
+    mat = scenario.material
+
+    def rounding(name: str, mean: float, got: int) -> None:
+        if mean > 0 and abs(got - mean) > ROUNDING_TOLERANCE * mean:
+            warnings.append(
+                f"{name}: density * volume = {mean:.4g} rounds to {got} "
+                f"({100 * (got - mean) / mean:+.0f} %)"
+            )
+
+    rounding("donors", mat.donors_cm3 * vol, counts.donors)
+    rounding("acceptors", mat.acceptors_cm3 * vol, counts.acceptors)
+    for trap, mean, got in zip(scenario.traps, trap_means(scenario), counts.traps):
+        if trap.count is None:
+            rounding(f"trap level '{trap.label}'", mean, got)
+
+    ss = continuum.steady_state(model)
+    lna = continuum.lna(model, x=ss)
+    var = np.diag(lna.covariance)
+    x0 = model.nearest_neutral_state(ss)
+    rate = float(model.propensities(x0).sum())
+    run = scenario.run
+    events = rate * (run.settle_s + run.duration_s) * run.trajectories
+    for name, mean in zip(model.species, ss):
+        if name.startswith("trapped:"):
+            continue
+        if mean < FEW_CARRIERS:
+            warnings.append(
+                f"{name}: continuum mean count {mean:.3g} is below {FEW_CARRIERS:g}; the "
+                "continuum and linear-noise answers are not to be trusted here"
+            )
+    if events > TOO_MANY_EVENTS:
+        warnings.append(
+            f"the run needs about {events:.2g} events (more than {TOO_MANY_EVENTS:.0e}); "
+            "shorten duration_s or use fewer trajectories"
+        )
+    times = [float(t) for t in lna.relaxation_times]
+    if times and run.duration_s < 20.0 * max(times):
+        warnings.append(
+            f"duration_s = {run.duration_s:.3g} s is shorter than 20 x the slowest relaxation "
+            f"time ({max(times):.3g} s): low-frequency spectra will be poorly resolved"
+        )
+    fs = run.samples / run.duration_s
+    if times and min(times) < 2.0 / fs:
+        warnings.append(
+            f"the fastest relaxation time ({min(times):.3g} s) is shorter than two sample "
+            f"intervals ({1 / fs:.3g} s): raise samples to resolve it"
+        )
+    return {
+        "title": scenario.title,
+        "volume_cm3": vol,
+        "surface_area_cm2": scenario.volume.surface_area_cm2,
+        "species": list(model.species),
+        "counts": {
+            "donors": counts.donors,
+            "acceptors": counts.acceptors,
+            **{f"T_{t.label}": n for t, n in zip(scenario.traps, counts.traps)},
+        },
+        "conserved_charge": model.charge,
+        "channels": [c.name for c in model.channels],
+        "steady_continuum": {s: float(v) for s, v in zip(model.species, ss)},
+        "var_lna": {s: float(v) for s, v in zip(model.species, var)},
+        "steady_density_cm3": {s: float(v) / vol for s, v in zip(model.species, ss)},
+        "start_state": {s: int(v) for s, v in zip(model.species, x0)},
+        "relaxation_times_s": times,
+        "event_rate_per_trajectory_s": rate,
+        "expected_events": events,
+        "warnings": warnings,
+    }
+
+
+def _eng(x: float) -> str:
+    if x == 0 or not math.isfinite(x):
+        return f"{x:g}"
+    return f"{x:.4g}"
+
+
+def format_summary(info: dict) -> str:
+    """A human-readable table of :func:`summarize`'s result."""
+    lines = [f"{info['title']}", f"  volume            {_eng(info['volume_cm3'])} cm^3"]
+    c = info["counts"]
+    lines.append(f"  donors            {c['donors']}")
+    lines.append(f"  acceptors         {c['acceptors']}")
+    for k, v in c.items():
+        if k.startswith("T_"):
+            lines.append(f"  traps {k[2:]:<11} {v}")
+    lines.append(f"  conserved charge  {info['conserved_charge']}  (N_e - N_h + sum M_k)")
+    lines.append("")
+    lines.append(f"  {'species':<22}{'steady (count)':>16}{'density (cm^-3)':>18}"
+                 f"{'var LNA':>14}{'Fano':>8}{'start':>10}")
+    for s in info["species"]:
+        m = info["steady_continuum"][s]
+        v = info["var_lna"][s]
+        fano = v / m if m > 0 else float("nan")
+        lines.append(f"  {s:<22}{_eng(m):>16}{_eng(info['steady_density_cm3'][s]):>18}"
+                     f"{_eng(v):>14}{fano:>8.3f}{info['start_state'][s]:>10}")
+    lines.append("")
+    if info["relaxation_times_s"]:
+        times = ", ".join(_eng(t) for t in info["relaxation_times_s"])
+        lines.append(f"  relaxation times (LNA)      {times} s")
+    lines.append(f"  event rate per trajectory   {_eng(info['event_rate_per_trajectory_s'])} /s")
+    lines.append(f"  expected events of the run  {_eng(info['expected_events'])}")
+    lines.append(f"  channels                    {', '.join(info['channels'])}")
+    for w in info["warnings"]:
+        lines.append(f"warning: {w}")
+    return "\n".join(lines)
