@@ -19,8 +19,22 @@ __version__ = "0.1.0"
 from .model import Model, build_model  # noqa: E402
 from .scenario import Scenario, ScenarioError, load_scenario  # noqa: E402
 
+
+
+def run(scenario: Scenario, **options):
+    """Run the ensemble of a scenario and return the output ``xarray.Dataset``.
+
+    The same as ``grmc run`` without writing a file; options as in
+    :func:`grmc.simulate.run` (``trajectories``, ``seed``, ``workers``, ``progress``).
+    """
+    from .simulate import run as _run
+
+    return _run(scenario, **options)
+
+
 __all__ = [
     "__version__",
+    "run",
     "Scenario",
     "ScenarioError",
     "Model",

@@ -29,6 +29,19 @@ def _flag(value: float, reference: float, stderr: float) -> str:
     return "" if value == reference else "!"
 
 
+def _fit_text(ds, name: str, kind_name: str, i: int) -> str:
+    kind = str(ds[kind_name].values[i])
+    if kind == "unresolved":
+        return "no corner resolved"
+    parts = []
+    for j in range(ds[name].shape[1]):
+        tau = float(ds[name][i, j])
+        err = float(ds[name + "_stderr"][i, j])
+        if math.isfinite(tau):
+            parts.append(f"{_g(tau, 4)} ± {_g(err, 2)} s")
+    return ("two Lorentzians: " if kind == "two" else "") + ", ".join(parts)
+
+
 def format_run_table(ds) -> str:
     """Per species: Monte Carlo mean ± standard error against the continuum, variance
     against the linear-noise value, and a flag (``!``) where they differ by more than
@@ -61,24 +74,27 @@ def format_run_table(ds) -> str:
     lines.append(f"  ('!': differs by more than {FLAG_SIGMAS:g} standard errors; in a small "
                  "volume the continuum answer is expected to be off)")
     if "tau_spectrum" in ds:
-        parts = []
+        lines.append("  time constants from the spectra, tau = 1/(2 pi f_c):")
         for i, s in enumerate(ds["species"].values):
-            tau = float(ds["tau_spectrum"][i])
-            if math.isfinite(tau):
-                parts.append(f"{s} {_g(tau, 3)} s")
-        if parts:
-            lines.append("  tau from the spectra (1/(2 pi f_c)): " + ", ".join(parts))
+            lines.append(f"    {str(s):<20}{_fit_text(ds, 'tau_spectrum', 'spectrum_kind', i)}")
     if "relaxation_time_lna" in ds and ds["relaxation_time_lna"].size:
         times = ", ".join(_g(t, 3) for t in ds["relaxation_time_lna"].values)
         lines.append(f"  linear-noise relaxation times:      {times} s")
     if "current_mean" in ds:
         i_mean = float(ds["current_mean"])
         lines.append(f"  current: mean {_g(i_mean, 5)} A")
-        if "current_plateau" in ds and math.isfinite(float(ds["current_plateau"])):
-            s0 = float(ds["current_plateau"])
-            fc = float(ds["current_corner_frequency"])
-            lines.append(f"           noise plateau {_g(s0, 3)} A^2/Hz = "
-                         f"{_g(math.sqrt(s0), 3)} A/sqrt(Hz), corner {_g(fc, 3)} Hz")
+        if "current_plateau" in ds:
+            for j in range(ds["current_plateau"].size):
+                s0 = float(ds["current_plateau"][j])
+                if not math.isfinite(s0):
+                    continue
+                fc = float(ds["current_corner_frequency"][j])
+                fce = float(ds["current_corner_frequency_stderr"][j])
+                lines.append(f"           noise plateau {_g(s0, 3)} A^2/Hz = "
+                             f"{_g(math.sqrt(s0), 3)} A/sqrt(Hz), corner {_g(fc, 3)} "
+                             f"± {_g(fce, 2)} Hz")
+            if str(ds["current_spectrum_kind"].values) == "unresolved":
+                lines.append("           no corner resolved in the current spectrum")
     if "events_total" in ds.attrs and ds.attrs.get("wall_time_s", 0) > 0:
         ev = int(ds.attrs["events_total"])
         wall = float(ds.attrs["wall_time_s"])

@@ -101,6 +101,8 @@ class _Acc:
     psd: np.ndarray | None = None
     current_psd: np.ndarray | None = None
     hist: dict = field(default_factory=dict)
+    group_psd: list = field(default_factory=list)  # (n, psd sum) of each chunk, in order
+    group_current_psd: list = field(default_factory=list)
     traj: list = field(default_factory=list)  # (index, mean, meansq, batch means, counts)
     n_events: int = 0
 
@@ -187,6 +189,9 @@ def run(
             )
             _reduce_one(acc, i, res, prep, ref, dt_fine, segments, a_e, a_h, len(names),
                         readout is not None)
+        acc.group_psd = [(acc.n, acc.psd.copy())]
+        if acc.current_psd is not None:
+            acc.group_current_psd = [(acc.n, acc.current_psd.copy())]
         return acc
 
     t0 = time.perf_counter()
@@ -216,8 +221,9 @@ def run(
     ss = continuum.steady_state(model0)
     lna = continuum.lna(model0, x=ss)
     t = np.arange(n_samples) * (duration / n_samples)
-    x_cont = continuum.transient(model0, mean_t[:, 0], t).T
-    freqs = spectra.frequencies(n_samples, duration, segments=segments)
+    x_cont = continuum.transient(model0, mean_t[0], t).T
+    freqs = spectra.periodogram_frequencies(n_samples, duration, segments=segments,
+                                            oversample=OVERSAMPLE)
     smat = continuum.lna_psd(model0, freqs, x=ss)
     psd_lna = np.real(np.einsum("iif->if", smat))
 
@@ -245,10 +251,11 @@ def run(
         "event_rate": (("channel",), acc.events / (n * duration)),
         "trajectory_mean": (("realization", "species"), tmean),
     }
-    fits = [spectra.analyse_spectrum(freqs, psd[s], psd_low[s], psd_high[s], k_total)
+    groups = _groups(acc.group_psd)
+    fits = [spectra.analyse_spectrum(freqs, psd[s], psd_low[s], psd_high[s], k_total,
+                                     batches=None if groups is None else groups[:, s])
             for s in range(S)]
-    data.update(_fit_vars(fits, prefix="", dims=("species",)))
-
+    data.update(_fit_vars(fits, prefix="", species_dim=True))
     if readout is not None:
         cur_psd = acc.current_psd / n
         c_low, c_high = spectra.welch_interval(cur_psd, k_total)
@@ -257,8 +264,9 @@ def run(
         data["current_psd_low"] = (("frequency",), c_low)
         data["current_psd_high"] = (("frequency",), c_high)
         data["current_psd_lna"] = (("frequency",), spectra.current_psd_from_matrix(smat, a_e, a_h))
-        cfit = spectra.analyse_spectrum(freqs, cur_psd, c_low, c_high, k_total)
-        data.update(_fit_vars([cfit], prefix="current_", dims=()))
+        cgroups = _groups(acc.group_current_psd)
+        cfit = spectra.analyse_spectrum(freqs, cur_psd, c_low, c_high, k_total, batches=cgroups)
+        data.update(_fit_vars([cfit], prefix="current_", species_dim=False))
 
     hist = _histogram(acc.hist, S)
     coords = {
@@ -293,6 +301,7 @@ def run(
         "samples": int(n_samples),
         "dopants": rs.dopants,
         "psd_segments_per_trajectory": int(segments),
+        "psd_segments": int(k_total),
         "psd_oversample": int(OVERSAMPLE),
         "events_total": int(acc.n_events),
         "wall_time_s": float(wall),
@@ -362,13 +371,17 @@ def _combine(parts: list[_Acc]) -> _Acc:
         if p.n == 0:
             continue
         if out.n == 0:
-            out = dataclasses.replace(p, traj=list(p.traj), hist=dict(p.hist))
+            out = dataclasses.replace(p, traj=list(p.traj), hist=dict(p.hist),
+                                      group_psd=list(p.group_psd),
+                                      group_current_psd=list(p.group_current_psd))
             continue
         out.n += p.n
         out.sum_x = out.sum_x + p.sum_x
         out.sum_x2 = out.sum_x2 + p.sum_x2
         out.events = out.events + p.events
         out.psd = out.psd + p.psd
+        out.group_psd.extend(p.group_psd)
+        out.group_current_psd.extend(p.group_current_psd)
         if p.current_psd is not None:
             out.current_psd = out.current_psd + p.current_psd
         out.traj.extend(p.traj)
@@ -392,19 +405,38 @@ def _histogram(hist: dict, n_species: int):
     return np.arange(lo, hi, dtype=np.int64), probs
 
 
-def _fit_vars(fits, *, prefix: str, dims: tuple[str, ...]) -> dict:
-    """Lorentzian fit results as data variables (NaN where no corner was resolved)."""
-    def arr(attr):
-        vals = [getattr(f, attr, np.nan) for f in fits]
-        vals = [np.nan if v is None else float(v) for v in vals]
-        return vals[0] if not dims else np.array(vals)
+def _groups(group_sums: list) -> np.ndarray | None:
+    """Mean periodograms of the chunks (disjoint, equally sized groups of trajectories), for
+    jackknife errors of the fits; None when there are too few equal groups."""
+    sizes = {n for n, _ in group_sums}
+    if len(group_sums) < 8 or len(sizes) != 1:
+        return None
+    return np.array([g / n for n, g in group_sums])
 
-    out = {
-        f"{prefix}plateau": (dims, arr("plateau")),
-        f"{prefix}corner_frequency": (dims, arr("corner_frequency")),
-        f"{prefix}tau_spectrum": (dims, arr("tau")),
+
+def _fit_vars(fits, *, prefix: str, species_dim: bool) -> dict:
+    """Lorentzian components (up to two, ascending corner) as data variables; NaN where a
+    component was not resolved."""
+    n_comp = 2
+    shape = (len(fits), n_comp)
+    vals = {k: np.full(shape, np.nan) for k in ("S0", "S0_err", "f_c", "f_c_err", "tau",
+                                                 "tau_err")}
+    for i, fit in enumerate(fits):
+        for j, comp in enumerate(fit.components[:n_comp]):
+            for k in vals:
+                vals[k][i, j] = getattr(comp, k)
+    kinds = np.array([f.kind for f in fits], dtype=object)
+    dims = ("species", "component") if species_dim else ("component",)
+
+    def pick(a):
+        return a if species_dim else a[0]
+
+    return {
+        f"{prefix}plateau": (dims, pick(vals["S0"])),
+        f"{prefix}plateau_stderr": (dims, pick(vals["S0_err"])),
+        f"{prefix}corner_frequency": (dims, pick(vals["f_c"])),
+        f"{prefix}corner_frequency_stderr": (dims, pick(vals["f_c_err"])),
+        f"{prefix}tau_spectrum": (dims, pick(vals["tau"])),
+        f"{prefix}tau_spectrum_stderr": (dims, pick(vals["tau_err"])),
+        f"{prefix}spectrum_kind": (dims[:-1], kinds if species_dim else kinds[0]),
     }
-    if dims:
-        out[f"{prefix}plateau_stderr"] = (dims, arr("plateau_stderr"))
-        out[f"{prefix}corner_frequency_stderr"] = (dims, arr("corner_frequency_stderr"))
-    return out

@@ -84,7 +84,7 @@ def summarize(scenario: Scenario) -> dict:
     if times and min(times) < 2.0 / fs:
         warnings.append(
             f"the fastest relaxation time ({min(times):.3g} s) is shorter than two sample "
-            f"intervals ({1 / fs:.3g} s): raise samples to resolve it"
+            f"intervals ({2 / fs:.3g} s): raise samples to resolve it"
         )
     return {
         "title": scenario.title,

@@ -21,9 +21,14 @@ the first writable directory of
    exists and belongs to someone else or is writable by others, since numba's cache holds
    pickled data),
 
-and, when it is 3 or 4 (or 2 is unusable and 1 was set to an unwritable place), points
-``NUMBA_CACHE_DIR`` there.  When none is writable, caching is switched off (every process then
-compiles, about a second).  :data:`CACHE_DIR` and :data:`CACHE_ENABLED` record the outcome.
+and, when it is 3 or 4, points ``NUMBA_CACHE_DIR`` there (numba itself skips an unwritable
+``NUMBA_CACHE_DIR`` and falls back to 2).  When none is writable, caching is switched off
+(every process then compiles, a few seconds).  :data:`CACHE_DIR` and :data:`CACHE_ENABLED`
+record the outcome.
+
+numba checks a cached function against its own source file only: the kernels in
+``kernels.py`` embed the generator of ``rng.py``, so after editing ``rng.py`` delete the
+cache (``grmc/engine/__pycache__/*.nbi``, ``*.nbc``, or the directory above) by hand.
 """
 
 from __future__ import annotations
@@ -35,7 +40,7 @@ import tempfile
 from collections.abc import Callable, Iterable
 from pathlib import Path
 
-__all__ = ["jit", "CACHE_DIR", "CACHE_ENABLED", "is_writable_dir", "select_cache_dir"]
+__all__ = ["CACHE_DIR", "CACHE_ENABLED", "is_writable_dir", "jit", "select_cache_dir"]
 
 _ENGINE_DIR = Path(__file__).resolve().parent
 _IN_TREE = _ENGINE_DIR / "__pycache__"
@@ -136,7 +141,8 @@ def _configure_cache() -> tuple[bool, str | None]:
 
 CACHE_ENABLED, CACHE_DIR = _configure_cache()
 
-import numba  # noqa: E402  (after the cache directory is settled)
+# numba is imported only now, after NUMBA_CACHE_DIR is settled (its config reads it).
+import numba
 
 #: The decorator of every compiled engine function.
 jit = numba.njit(nogil=True, cache=CACHE_ENABLED, fastmath=False, error_model="numpy")

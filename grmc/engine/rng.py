@@ -28,13 +28,13 @@ import numpy as np
 from ._jit import jit
 
 __all__ = [
-    "stream_state",
-    "next_u64",
-    "next_double",
-    "xoshiro_step",
-    "py_next_u64",
-    "py_next_double",
     "DOUBLE_UNIT",
+    "next_double",
+    "next_u64",
+    "py_next_double",
+    "py_next_u64",
+    "stream_state",
+    "xoshiro_step",
 ]
 
 MASK64 = (1 << 64) - 1

@@ -1,0 +1,597 @@
+"""Noise spectra for circuit work: CSV tables and Verilog-A noise sources.
+
+From an output Dataset (interface.md section 3) this module writes
+
+* a CSV table of one spectrum (the readout current, or the count of one species) with its
+  95 % interval and the linear-noise line, under a ``#`` header that says what it is;
+* a Verilog-A module with a current noise source ``I(p, n) <+ noise_table(...)`` whose
+  table is the current spectrum resampled to about 20 points per decade, plus the same table
+  as a plain two-column file ``<stem>.tbl``.
+
+Every file is written to a temporary name in the target directory and then renamed, so a
+failed export never leaves a partial file where a good one is expected.
+
+Public API
+----------
+export_csv(ds, path, *, quantity=None) -> Path
+export_verilog_a(ds, path, *, quantity=None, interpolation="linear", module_name=None,
+                 source="mc", table="inline", points_per_decade=20) -> tuple[Path, Path]
+read_noise_table(path) -> (f, S)
+spectrum_table(ds, quantity=None) -> SpectrumTable
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import re
+import tempfile
+import tomllib
+from dataclasses import dataclass
+from pathlib import Path
+from typing import TYPE_CHECKING, Any, Literal
+
+import numpy as np
+
+from . import spectra
+
+if TYPE_CHECKING:  # pragma: no cover
+    import xarray as xr
+
+__all__ = [
+    "SpectrumTable",
+    "export_csv",
+    "export_verilog_a",
+    "read_noise_table",
+    "resample_spectrum",
+    "spectrum_table",
+]
+
+#: printf format of every number written: 11 significant digits, enough to round-trip
+#: the spectra (whose statistical error is far larger) and exact for the frequency grid.
+NUMBER_FORMAT = "%.10e"
+
+_IDENTIFIER = re.compile(r"^[A-Za-z_][A-Za-z0-9_$]*$")
+_NUMBER = re.compile(r"[-+]?(?:\d+\.?\d*|\.\d+)(?:[eE][-+]?\d+)?")
+# a few Verilog-AMS keywords a file stem could plausibly collide with
+_KEYWORDS = {
+    "module", "endmodule", "analog", "begin", "end", "input", "output", "inout",
+    "electrical", "real", "integer", "parameter", "if", "else", "for", "while", "case",
+    "function", "discipline", "nature", "branch", "table", "noise_table", "initial",
+}
+
+
+# --------------------------------------------------------------------------------------------
+# What to export
+# --------------------------------------------------------------------------------------------
+@dataclass(frozen=True)
+class SpectrumTable:
+    """One spectrum taken out of an output Dataset.
+
+    Attributes
+    ----------
+    quantity : str  "current" or a species name
+    is_current : bool
+    units : str  "A^2/Hz" or "counts^2/Hz"
+    frequency : ndarray  [Hz]
+    psd, psd_low, psd_high : ndarray  One-sided estimate and its 95 % interval [units]
+    psd_lna : ndarray or None  Linear-noise spectrum [units]
+    n_segments : float or None  K, periodogram values averaged per frequency [1]
+    interval_note : str  How the interval was made
+    exact : bool  The file is a master-equation solution (``grmc exact``), not a Monte Carlo
+        estimate
+    title : str  Scenario title
+    bias_V : float or None  Readout bias [V]
+    current_mean_A : float or None  Mean readout current [A]
+    """
+
+    quantity: str
+    is_current: bool
+    units: str
+    frequency: np.ndarray
+    psd: np.ndarray
+    psd_low: np.ndarray
+    psd_high: np.ndarray
+    psd_lna: np.ndarray | None
+    n_segments: float | None
+    interval_note: str
+    exact: bool
+    title: str
+    bias_V: float | None
+    current_mean_A: float | None
+
+
+def _open(ds: Any) -> xr.Dataset:
+    if isinstance(ds, (str, os.PathLike)):
+        import xarray as xr
+
+        with xr.open_dataset(ds) as opened:
+            return opened.load()
+    return ds
+
+
+def _species_names(ds: xr.Dataset) -> list[str]:
+    if "species" not in ds.coords and "species" not in ds.dims:
+        return []
+    return [str(s) for s in np.asarray(ds["species"].values)]
+
+
+def _bias(ds: xr.Dataset) -> float | None:
+    """Readout bias from the ``readout_bias_V`` attribute, else from the scenario text."""
+    if "readout_bias_V" in ds.attrs:
+        try:
+            return float(ds.attrs["readout_bias_V"])
+        except (TypeError, ValueError):
+            return None
+    text = ds.attrs.get("scenario_toml")
+    if not isinstance(text, str):
+        return None
+    try:
+        value = tomllib.loads(text).get("readout", {}).get("bias_V")
+    except tomllib.TOMLDecodeError:
+        return None
+    return float(value) if isinstance(value, (int, float)) else None
+
+
+def _one_d(da: xr.DataArray, what: str) -> np.ndarray:
+    extra = [d for d in da.dims if d != "frequency"]
+    if extra:
+        raise ValueError(
+            f"{what} has dimensions {tuple(da.dims)}: select one point first, "
+            f"e.g. ds.isel({extra[0]}=0)"
+        )
+    return np.asarray(da.values, dtype=float)
+
+
+def spectrum_table(ds: Any, quantity: str | None = None) -> SpectrumTable:
+    """Take one spectrum with its interval out of an output Dataset.
+
+    Parameters
+    ----------
+    ds : xarray.Dataset or path  Output file contents (interface.md section 3)
+    quantity : str, optional  "current" (needs ``current_psd``) or a species name; default
+        "current" where the file has ``current_psd``, else "electrons"
+
+    Returns
+    -------
+    SpectrumTable
+
+    Raises
+    ------
+    ValueError  for an unknown quantity, or a Dataset with more dimensions than
+        (species, frequency) (select a sweep point first).
+
+    Notes
+    -----
+    The current's interval is read from ``current_psd_low`` / ``current_psd_high`` where the
+    file has them.  Otherwise it is made from the count intervals: every spectrum in the
+    file is an average of the same K periodogram values, so the relative 95 % interval
+    nu / chi2.ppf(., nu), nu = 2K, is the same for all of them (Welch 1967).
+    """
+    ds = _open(ds)
+    names = _species_names(ds)
+    if quantity is None:
+        quantity = "current" if "current_psd" in ds else "electrons"
+    title = str(ds.attrs.get("title", "untitled scenario"))
+    freq = _one_d(ds["frequency"], "frequency")
+    n_seg: float | None = None
+    for holder in (ds.attrs, ds["psd"].attrs if "psd" in ds else {}):
+        for key in ("psd_segments", "n_segments", "segments_total"):
+            if key in holder:
+                n_seg = float(holder[key])
+    current_mean = None
+    if "current_mean" in ds and ds["current_mean"].ndim == 0:
+        current_mean = float(ds["current_mean"].values)
+
+    if quantity == "current":
+        if "current_psd" not in ds:
+            raise ValueError(
+                "this file has no current_psd (the scenario has no [readout]); "
+                f"give a species instead: {', '.join(names)}"
+            )
+        psd = _one_d(ds["current_psd"], "current_psd")
+        if "current_psd_low" in ds and "current_psd_high" in ds:
+            low = _one_d(ds["current_psd_low"], "current_psd_low")
+            high = _one_d(ds["current_psd_high"], "current_psd_high")
+        elif "psd" in ds and "psd_low" in ds and "psd_high" in ds:
+            ref = ds["psd"].isel(species=0)
+            rel_lo = _one_d(ds["psd_low"].isel(species=0), "psd_low") / _one_d(ref, "psd")
+            rel_hi = _one_d(ds["psd_high"].isel(species=0), "psd_high") / _one_d(ref, "psd")
+            low, high = psd * rel_lo, psd * rel_hi
+        else:
+            low = high = np.full_like(psd, np.nan)
+        lna = _one_d(ds["current_psd_lna"], "current_psd_lna") if "current_psd_lna" in ds else None
+        units, is_current = "A^2/Hz", True
+    else:
+        if quantity not in names:
+            opts = ", ".join((["current"] if "current_psd" in ds else []) + names)
+            raise ValueError(f"unknown quantity {quantity!r}; this file has: {opts}")
+        sel = {"species": names.index(quantity)}
+        psd = _one_d(ds["psd"].isel(sel), "psd")
+        if "psd_low" in ds and "psd_high" in ds:
+            low = _one_d(ds["psd_low"].isel(sel), "psd_low")
+            high = _one_d(ds["psd_high"].isel(sel), "psd_high")
+        else:
+            low = high = np.full_like(psd, np.nan)
+        lna = _one_d(ds["psd_lna"].isel(sel), "psd_lna") if "psd_lna" in ds else None
+        units, is_current = "counts^2/Hz", False
+
+    if n_seg is None and np.any(np.isfinite(low)):
+        try:
+            n_seg = spectra.segments_from_interval(psd, low, high)
+        except ValueError:
+            n_seg = None
+    if "probability_outside" in ds:
+        note = "none (an exact master-equation spectrum; psd_low, psd_high are nan)"
+    elif np.all(~np.isfinite(low)):
+        note = "none in the file (psd_low, psd_high are nan)"
+    else:
+        k_txt = f"K = {n_seg:.6g}" if n_seg is not None else "K"
+        note = (
+            "psd_low .. psd_high is the 95 % chi-squared interval of an average of "
+            f"{k_txt} periodogram values "
+            "(nu = 2K degrees of freedom; Welch, IEEE Trans. Audio Electroacoust. 15, 70, 1967)"
+        )
+    return SpectrumTable(
+        quantity=quantity, is_current=is_current, units=units, frequency=freq, psd=psd,
+        psd_low=low, psd_high=high, psd_lna=lna, n_segments=n_seg, interval_note=note,
+        exact="probability_outside" in ds,
+        title=title, bias_V=_bias(ds), current_mean_A=current_mean,
+    )
+
+
+# --------------------------------------------------------------------------------------------
+# Files
+# --------------------------------------------------------------------------------------------
+def _atomic_write(path: Path, text: str) -> None:
+    """Write text to a temporary file next to path, then rename it over path."""
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
+    try:
+        with os.fdopen(fd, "w", encoding="utf-8", newline="\n") as fh:
+            fh.write(text)
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        try:
+            os.unlink(tmp)
+        except FileNotFoundError:
+            pass
+        raise
+
+
+def _fmt(x: float) -> str:
+    return NUMBER_FORMAT % x
+
+
+def _header_lines(tab: SpectrumTable) -> list[str]:
+    what = (
+        "readout current of the biased bar (noise of I = q bias/L^2 (mu_n N_e + mu_p N_h))"
+        if tab.is_current
+        else f"number of {tab.quantity} in the volume"
+    )
+    lines = [
+        "grmc noise spectrum",
+        f"scenario: {tab.title}",
+        f"quantity: {tab.quantity} -- {what}",
+        f"units: frequency in Hz; spectral densities in {tab.units}",
+        "one-sided power spectral density: its integral over f > 0 is the variance",
+    ]
+    if tab.bias_V is not None:
+        lines.append(f"readout bias: {tab.bias_V:g} V")
+    if tab.is_current and tab.current_mean_A is not None:
+        lines.append(f"mean current: {tab.current_mean_A:.6e} A")
+    return lines
+
+
+def export_csv(ds: Any, path: str | os.PathLike[str], *, quantity: str | None = None) -> Path:
+    """Write one spectrum with its interval as CSV.
+
+    Parameters
+    ----------
+    ds : xarray.Dataset or path  Output file contents
+    path : path  CSV file to write
+    quantity : str, optional  "current" or a species name (see :func:`spectrum_table`)
+
+    Returns
+    -------
+    Path  The file written
+
+    Notes
+    -----
+    Columns ``frequency_Hz, psd, psd_low, psd_high`` and ``psd_lna`` where the file has
+    the linear-noise spectrum; ``#`` comment lines first (scenario title, quantity, units,
+    one-sidedness, how the interval was made).  Readable with
+    ``numpy.loadtxt(path, delimiter=",", skiprows=...)`` or ``pandas.read_csv(path,
+    comment="#")``.
+    """
+    tab = spectrum_table(ds, quantity)
+    path = Path(path)
+    cols = {"frequency_Hz": tab.frequency, "psd": tab.psd, "psd_low": tab.psd_low,
+            "psd_high": tab.psd_high}
+    if tab.psd_lna is not None:
+        cols["psd_lna"] = tab.psd_lna
+    head = _header_lines(tab) + [
+        f"interval: {tab.interval_note}",
+    ]
+    if tab.psd_lna is not None:
+        head.append("psd_lna: linear-noise approximation (van Kampen's system-size expansion)")
+    if tab.exact:
+        head.append("psd: exact spectrum of the master equation (finite state projection)")
+    else:
+        head.append("psd: Monte Carlo estimate of the continuous-time spectrum, corrected "
+                    "for sampling (bin averaging, aliasing)")
+    out = ["# " + h for h in head]
+    out.append(",".join(cols))
+    data = np.column_stack(list(cols.values()))
+    for row in data:
+        out.append(",".join("nan" if not np.isfinite(v) else _fmt(v) for v in row))
+    _atomic_write(path, "\n".join(out) + "\n")
+    return path
+
+
+def _log_grid(f_lo: float, f_hi: float, points_per_decade: int) -> np.ndarray:
+    """Logarithmic grid from f_lo to f_hi (both exact), at least points_per_decade."""
+    if points_per_decade < 1:
+        raise ValueError(f"points_per_decade must be >= 1, got {points_per_decade!r}")
+    lo, hi = math.log10(f_lo), math.log10(f_hi)
+    n = max(2, math.ceil((hi - lo) * points_per_decade) + 1)
+    grid = np.logspace(lo, hi, n)
+    grid[0], grid[-1] = f_lo, f_hi
+    return grid
+
+
+def resample_spectrum(
+    freqs: np.ndarray,
+    psd: np.ndarray,
+    *,
+    points_per_decade: int = 20,
+    smooth: bool = True,
+) -> tuple[np.ndarray, np.ndarray]:
+    """Resample a positive spectrum onto a logarithmic grid spanning its band.
+
+    Parameters
+    ----------
+    freqs : array  Ascending frequencies [Hz]
+    psd : array  Spectrum [unit^2/Hz]
+    points_per_decade : int  Grid density [1]
+    smooth : bool  Average the values inside each grid point's band (width one grid step
+        in log f) before interpolating -- for a noisy estimate; False interpolates the given
+        values (for a smooth curve)
+
+    Returns
+    -------
+    f, S : ndarray  Grid from min(freqs) to max(freqs), ascending, unique, > 0 [Hz], and the
+        spectrum on it, interpolated linearly in log f - log S [unit^2/Hz]
+    """
+    f = np.asarray(freqs, dtype=float)
+    s = np.asarray(psd, dtype=float)
+    good = np.isfinite(f) & np.isfinite(s) & (f > 0) & (s > 0)
+    f, s = f[good], s[good]
+    if f.size < 2:
+        raise ValueError("fewer than two positive spectrum values to tabulate")
+    order = np.argsort(f)
+    f, s = f[order], s[order]
+    grid = _log_grid(f[0], f[-1], points_per_decade)
+    lo, hi = math.log10(f[0]), math.log10(f[-1])
+    n = grid.size
+    if smooth:
+        half = 0.5 / points_per_decade
+        edges = np.concatenate([[lo - half], 0.5 * (np.log10(grid[1:]) + np.log10(grid[:-1])),
+                                [hi + half]])
+        idx = np.searchsorted(edges, np.log10(f), side="right") - 1
+        counts = np.bincount(idx, minlength=n)
+        s_sum = np.bincount(idx, weights=s, minlength=n)
+        lf_sum = np.bincount(idx, weights=np.log10(f), minlength=n)
+        keep = counts > 0
+        xp = lf_sum[keep] / counts[keep]
+        yp = np.log10(s_sum[keep] / counts[keep])
+    else:
+        xp, yp = np.log10(f), np.log10(s)
+    x = np.log10(grid)
+    y = np.interp(x, xp, yp)
+    if xp.size >= 2:  # the end bands are one-sided: extend the end slopes, do not clamp
+        lo_side, hi_side = x < xp[0], x > xp[-1]
+        y[lo_side] = yp[0] + (x[lo_side] - xp[0]) * (yp[1] - yp[0]) / (xp[1] - xp[0])
+        y[hi_side] = yp[-1] + (x[hi_side] - xp[-1]) * (yp[-1] - yp[-2]) / (xp[-1] - xp[-2])
+    return grid, 10.0**y
+
+
+def _verilog_table(tab: SpectrumTable, source: str, points_per_decade: int
+                   ) -> tuple[np.ndarray, np.ndarray, str]:
+    if source == "mc":
+        f, s = resample_spectrum(tab.frequency, tab.psd, points_per_decade=points_per_decade)
+        what = "exact master-equation spectrum" if tab.exact else "Monte Carlo estimate"
+        how = f"{what}, averaged over bands one grid step wide in log f, then interpolated log-log"
+    elif source == "lna":
+        if tab.psd_lna is None:
+            raise ValueError("source='lna' needs current_psd_lna in the file")
+        f, s = resample_spectrum(tab.frequency, tab.psd_lna,
+                                 points_per_decade=points_per_decade, smooth=False)
+        how = "linear-noise approximation, interpolated log-log"
+    elif source == "fit":
+        res = spectra.analyse_spectrum(tab.frequency, tab.psd, tab.psd_low, tab.psd_high,
+                                       tab.n_segments)
+        if res.kind == "unresolved":
+            raise ValueError(f"no trustworthy Lorentzian fit to export ({res.message}); "
+                             "use source='mc' or 'lna'")
+        band = tab.frequency[np.isfinite(tab.psd) & (tab.psd > 0)]
+        f = _log_grid(float(band.min()), float(band.max()), points_per_decade)
+        s = np.zeros_like(f)
+        for c in res.components:
+            s += c.S0 / (1.0 + (f / c.f_c) ** 2)
+        how = "fitted Lorentzian(s): " + res.message
+    else:
+        raise ValueError(f"source must be 'mc', 'fit' or 'lna', got {source!r}")
+    return f, s, how
+
+
+def _module_name(name: str | None, stem: str) -> str:
+    if name is not None:
+        if not _IDENTIFIER.match(name) or name in _KEYWORDS:
+            raise ValueError(f"module_name {name!r} is not a Verilog-A identifier")
+        return name
+    cand = re.sub(r"[^A-Za-z0-9_]", "_", stem)
+    if not _IDENTIFIER.match(cand) or cand in _KEYWORDS:
+        cand = "grmc_" + cand
+    return cand
+
+
+def export_verilog_a(
+    ds: Any,
+    path: str | os.PathLike[str],
+    *,
+    quantity: str | None = None,
+    interpolation: Literal["linear", "log"] = "linear",
+    module_name: str | None = None,
+    source: Literal["mc", "fit", "lna"] = "mc",
+    table: Literal["inline", "file"] = "inline",
+    points_per_decade: int = 20,
+) -> tuple[Path, Path]:
+    """Write a Verilog-A current noise source with the tabulated current spectrum.
+
+    Parameters
+    ----------
+    ds : xarray.Dataset or path  Output file contents (needs ``current_psd``)
+    path : path  The ``.va`` file; the table goes to ``<stem>.tbl`` next to it
+    quantity : str, optional  Must be "current" (the default where the file has it)
+    interpolation : "linear" | "log"  ``noise_table`` (LRM 2.4 section 4.6.4.3: linear in
+        f and S) or ``noise_table_log`` (section 4.6.4.4: linear in log f, log S)
+    module_name : str, optional  Default: the file stem, made a legal identifier
+    source : "mc" | "fit" | "lna"  What is tabulated: the Monte Carlo estimate smoothed over
+        bands one grid step wide (default: the simulation's answer), the fitted one or two
+        Lorentzians (smooth; refused when the fit is), or the linear-noise spectrum
+    table : "inline" | "file"  The table as an array literal in the module, or the file form
+        ``noise_table("<stem>.tbl", "name")`` (most portable; the simulator resolves the
+        name relative to its working directory)
+    points_per_decade : int  Table density (about 20: noise_table interpolates linearly
+        between points) [1]
+
+    Returns
+    -------
+    (va_path, tbl_path) : Path, Path
+
+    Raises
+    ------
+    ValueError  for a count quantity (a count spectrum is not a current), a file without
+        ``current_psd``, or a refused fit.
+
+    Notes
+    -----
+    The module is a noise-only two-terminal element: ``I(p, n) <+ noise_table(...)`` with
+    (frequency [Hz], one-sided PSD [A^2/Hz]) pairs, ascending, unique, > 0, spanning the
+    band of the simulation (1/T_seg to the output Nyquist frequency).  It adds no DC
+    current.  The array literal is the LRM 2.4 form ``'{f1, S1, f2, S2, ...}``; older tools
+    want ``{...}`` -- or use ``table="file"``.
+    """
+    tab = spectrum_table(ds, quantity)
+    if not tab.is_current:
+        raise ValueError(
+            f"quantity {tab.quantity!r} is a count spectrum [counts^2/Hz], not a current: a "
+            "Verilog-A noise source needs A^2/Hz (add a [readout] to the scenario), or "
+            "export the counts as CSV"
+        )
+    if interpolation not in ("linear", "log"):
+        raise ValueError(f"interpolation must be 'linear' or 'log', got {interpolation!r}")
+    if table not in ("inline", "file"):
+        raise ValueError(f"table must be 'inline' or 'file', got {table!r}")
+    va_path = Path(path)
+    if va_path.suffix == ".tbl":
+        raise ValueError("give the .va file name; the .tbl is written next to it")
+    tbl_path = va_path.with_suffix(".tbl")
+    f, s, how = _verilog_table(tab, source, points_per_decade)
+    if not (np.all(np.diff(f) > 0) and np.all(f > 0) and np.all(np.isfinite(s))):
+        raise ValueError("internal: the table is not ascending, unique and finite")
+    name = _module_name(module_name, va_path.stem)
+    func = "noise_table" if interpolation == "linear" else "noise_table_log"
+
+    head = _header_lines(tab) + [
+        f"table: {f.size} (frequency [Hz], PSD [A^2/Hz]) pairs, {f[0]:.6g} .. {f[-1]:.6g} Hz",
+        f"source: {how}",
+        f"interpolation in the simulator: {func} (Accellera Verilog-AMS LRM 2.4, section "
+        + ("4.6.4.3, linear)" if func == "noise_table" else "4.6.4.4, log-log)"),
+    ]
+    tbl = ["# " + h for h in head] + ["# frequency_Hz  psd_A2_per_Hz"]
+    tbl += [f"{_fmt(a)} {_fmt(b)}" for a, b in zip(f, s)]
+    _atomic_write(tbl_path, "\n".join(tbl) + "\n")
+
+    va = ["// " + h for h in head]
+    va += [
+        "// A noise-only element: connect it across the node whose current noise it models.",
+        "",
+        '`include "disciplines.vams"',
+        "",
+        f"module {name}(p, n);",
+        "    inout p, n;",
+        "    electrical p, n;",
+        "    analog begin",
+    ]
+    label = f'"{name}"'
+    if table == "file":
+        va.append(f'        I(p, n) <+ {func}("{tbl_path.name}", {label});')
+    else:
+        va.append(f"        I(p, n) <+ {func}('{{")
+        rows = [f"            {_fmt(a)}, {_fmt(b)}" for a, b in zip(f, s)]
+        va.append(",\n".join(rows))
+        va.append(f"        }}, {label});")
+    va += ["    end", "endmodule", ""]
+    _atomic_write(va_path, "\n".join(va))
+    return va_path, tbl_path
+
+
+# --------------------------------------------------------------------------------------------
+# Reading back
+# --------------------------------------------------------------------------------------------
+def _pairs(numbers: list[float], where: Path) -> tuple[np.ndarray, np.ndarray]:
+    if len(numbers) % 2:
+        raise ValueError(f"{where}: odd number of values in the noise table")
+    a = np.asarray(numbers, dtype=float).reshape(-1, 2)
+    return a[:, 0], a[:, 1]
+
+
+def read_noise_table(path: str | os.PathLike[str]) -> tuple[np.ndarray, np.ndarray]:
+    """Parse a noise table: a ``.tbl`` file, or the table of a ``.va`` module.
+
+    Parameters
+    ----------
+    path : path  A two-column file (``#`` comments, one ``frequency power`` pair per line),
+        or a Verilog-A file whose ``noise_table`` / ``noise_table_log`` call holds an array
+        literal (``'{...}`` or ``{...}``) or names a table file (read relative to the
+        ``.va`` file's directory)
+
+    Returns
+    -------
+    f, S : ndarray  Frequencies [Hz] and one-sided PSD [A^2/Hz]
+
+    Raises
+    ------
+    ValueError  when no table is found or the values do not pair up.
+    """
+    path = Path(path)
+    text = path.read_text(encoding="utf-8")
+    if path.suffix.lower() in (".va", ".vams", ".v"):
+        code = re.sub(r"//[^\n]*", "", text)
+        code = re.sub(r"/\*.*?\*/", "", code, flags=re.DOTALL)
+        m = re.search(r"noise_table(?:_log)?\s*\(\s*", code)
+        if m is None:
+            raise ValueError(f"{path}: no noise_table call")
+        rest = code[m.end():]
+        if rest.startswith('"'):
+            fname = rest[1:rest.index('"', 1)]
+            return read_noise_table(path.parent / fname)
+        rest = rest.lstrip("'")
+        if not rest.startswith("{"):
+            raise ValueError(f"{path}: noise_table argument is neither a file nor an array")
+        body = rest[1:rest.index("}")]
+        return _pairs([float(x) for x in _NUMBER.findall(body)], path)
+    numbers: list[float] = []
+    for line in text.splitlines():
+        line = line.split("#", 1)[0].strip()
+        if not line:
+            continue
+        vals = line.replace(",", " ").split()
+        if len(vals) != 2:
+            raise ValueError(f"{path}: expected 'frequency power' per line, got {line!r}")
+        numbers.extend(float(v) for v in vals)
+    return _pairs(numbers, path)

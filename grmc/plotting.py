@@ -1,0 +1,424 @@
+"""Figures of an output file: spectra, transient, count histogram, event rates.
+
+matplotlib is imported inside the functions, never at module import, and only through its
+object interface (``matplotlib.figure.Figure``): no pyplot state, no GUI, PNGs through the
+Agg renderer.  Every ``plot_*`` function takes ``ax=`` (a new figure when None) and returns
+the axes it drew on; to show a figure interactively pass an axes made with pyplot.
+
+Variables used (interface.md section 3), all optional except where a plot needs them:
+``psd``, ``psd_low``, ``psd_high``, ``psd_lna`` (species, frequency); ``current_psd``,
+``current_psd_lna`` (frequency), ``current_mean``; ``count_mean``, ``count_var``,
+``count_continuum`` (species, t); ``event_rate`` (channel); and these additions:
+
+* ``corner_frequency`` (species, [component]) [Hz] and ``current_corner_frequency``
+  ([component]) [Hz]: fitted corners; when absent the corner is fitted here
+  (:func:`grmc.spectra.analyse_spectrum`);
+* ``count_histogram`` (species, count_value) [1]: time-weighted probability that the count
+  equals ``count_value`` (an integer coordinate, 0 .. max), pooled over the ensemble;
+* ``count_histogram_exact`` (species, count_value) [1]: the exact stationary law, where
+  known (small volumes, ``grmc exact``).
+
+Public API
+----------
+plot_psd(ds, species_or_current, ax=None) -> Axes
+plot_transient(ds, ax=None, *, species=None) -> Axes
+plot_histogram(ds, species, ax=None) -> Axes
+plot_event_rates(ds, ax=None) -> Axes
+plot_all(path_nc, outdir) -> list[Path]
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import textwrap
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+import numpy as np
+
+from . import export, spectra
+
+if TYPE_CHECKING:  # pragma: no cover
+    import xarray as xr
+    from matplotlib.axes import Axes
+
+__all__ = ["plot_all", "plot_event_rates", "plot_histogram", "plot_psd", "plot_transient"]
+
+DPI = 150
+_PANEL = (6.4, 4.3)  # inches per panel
+_MC_COLOR = "C0"
+_LNA_COLOR = "0.15"
+_CORNER_COLOR = "C3"
+
+_PREFIXES = [(1.0, ""), (1e-3, "m"), (1e-6, "µ"), (1e-9, "n"), (1e-12, "p"), (1e-15, "f")]
+
+
+def _new_axes(ax: Axes | None, size: tuple[float, float] = _PANEL) -> Axes:
+    if ax is not None:
+        return ax
+    from matplotlib.figure import Figure
+
+    fig = Figure(figsize=size, layout="constrained")
+    return fig.add_subplot()
+
+
+def _note(ax: Axes, text: str) -> Axes:
+    ax.text(0.5, 0.5, text, transform=ax.transAxes, ha="center", va="center", wrap=True,
+            fontsize=9, color="0.3")
+    ax.set_xticks([])
+    ax.set_yticks([])
+    return ax
+
+
+def _engineering(value: float) -> tuple[float, str]:
+    """Scale and SI prefix for a positive magnitude (s, ms, µs, ns, ...)."""
+    for scale, prefix in _PREFIXES:
+        if abs(value) >= scale:
+            return scale, prefix
+    return _PREFIXES[-1]
+
+
+def _si(value: float, unit: str) -> str:
+    """'1.23 MHz' style text."""
+    if value == 0 or not math.isfinite(value):
+        return f"{value:g} {unit}"
+    exp3 = math.floor(math.log10(abs(value)) / 3)
+    exp3 = max(-5, min(4, exp3))
+    prefix = {-5: "f", -4: "p", -3: "n", -2: "µ", -1: "m", 0: "", 1: "k", 2: "M", 3: "G",
+              4: "T"}[exp3]
+    return f"{value / 10 ** (3 * exp3):.3g} {prefix}{unit}"
+
+
+def _title(ds: xr.Dataset) -> str:
+    title = str(ds.attrs.get("title", "")).strip()
+    note = ds.attrs.get("_grmc_plot_note", "")
+    return f"{title} {note}".strip()
+
+
+def _species_label(name: str) -> str:
+    if name.startswith("trapped:"):
+        return f"occupied traps ({name.split(':', 1)[1]})"
+    return name
+
+
+def _corners(ds: xr.Dataset, tab: export.SpectrumTable) -> tuple[list[float], str]:
+    """Corner frequencies from the file, else fitted here; and a note when there is none."""
+    if tab.is_current:
+        da = ds.get("current_corner_frequency")
+    else:
+        da = ds.get("corner_frequency")
+        if da is not None and "species" in da.dims:
+            da = da.sel(species=tab.quantity)
+    if da is not None:
+        vals = [float(v) for v in np.atleast_1d(np.asarray(da.values, dtype=float))]
+        vals = [v for v in vals if math.isfinite(v) and v > 0]
+        return vals, "" if vals else "no corner resolved"
+    if not np.any(np.isfinite(tab.psd_low)):
+        return [], ""
+    try:
+        res = spectra.analyse_spectrum(tab.frequency, tab.psd, tab.psd_low, tab.psd_high,
+                                       tab.n_segments)
+    except ValueError as exc:
+        return [], str(exc)
+    if res.kind == "unresolved":
+        return [], res.message
+    return list(res.corner_frequencies), ""
+
+
+# --------------------------------------------------------------------------------------------
+def plot_psd(ds: xr.Dataset, species_or_current: str = "current", ax: Axes | None = None
+             ) -> Axes:
+    """Log-log spectrum: Monte Carlo with its 95 % band, linear-noise line, corner(s).
+
+    Parameters
+    ----------
+    ds : xarray.Dataset  Output file contents
+    species_or_current : str  "current" or a species name
+    ax : matplotlib Axes, optional
+
+    Returns
+    -------
+    Axes
+    """
+    ax = _new_axes(ax)
+    try:
+        tab = export.spectrum_table(ds, species_or_current)
+    except (ValueError, KeyError) as exc:
+        return _note(ax, f"no spectrum: {exc}")
+    f = tab.frequency
+    if np.any(np.isfinite(tab.psd_low)):
+        ax.fill_between(f, tab.psd_low, tab.psd_high, color=_MC_COLOR, alpha=0.25, lw=0,
+                        label="95 % interval")
+    k_txt = f", K = {tab.n_segments:.0f}" if tab.n_segments else ""
+    ax.plot(f, tab.psd, color=_MC_COLOR, lw=0.8 if not tab.exact else 1.6,
+            label="exact (master equation)" if tab.exact else f"Monte Carlo{k_txt}")
+    if tab.psd_lna is not None:
+        ax.plot(f, tab.psd_lna, color=_LNA_COLOR, lw=1.4, ls="--", label="linear noise")
+    if tab.is_current and tab.current_mean_A is not None and tab.current_mean_A != 0:
+        shot = float(spectra.shot_noise_psd(tab.current_mean_A))
+        ax.axhline(shot, color="C2", lw=1.0, ls=":",
+                   label=f"shot noise 2qI, I = {_si(abs(tab.current_mean_A), 'A')}")
+    ax.set_xscale("log")
+    ax.set_yscale("log")
+    corners, why = _corners(ds, tab)
+    for i, fc in enumerate(corners):
+        ax.axvline(fc, color=_CORNER_COLOR, lw=1.0, ls="-.",
+                   label="corner frequency" if i == 0 else None)
+        tau = 1.0 / (2.0 * math.pi * fc)
+        ax.annotate(f"$f_c$ = {_si(fc, 'Hz')}\n$\\tau$ = {_si(tau, 's')}", xy=(fc, 0.04),
+                    xycoords=("data", "axes fraction"), xytext=(4, 0),
+                    textcoords="offset points", fontsize=8, color=_CORNER_COLOR)
+    if why and not corners:
+        lines = textwrap.wrap(f"no corner: {why}", 80)
+        short = "\n".join(lines[:2]) + (" ..." if len(lines) > 2 else "")
+        ax.text(0.02, 0.03, short, transform=ax.transAxes, fontsize=7, color="0.35")
+    ax.set_xlabel("frequency f [Hz]")
+    if tab.is_current:
+        ax.set_ylabel("current noise $S_I$ [A²/Hz], one-sided")
+        sec = ax.secondary_yaxis("right", functions=(np.sqrt, np.square))
+        sec.set_ylabel("$\\sqrt{S_I}$ [A/$\\sqrt{Hz}$]")
+        what = "readout current"
+    else:
+        ax.set_ylabel("count noise $S_N$ [counts²/Hz], one-sided")
+        what = _species_label(tab.quantity)
+    head = _title(ds)
+    ax.set_title(f"{head}\n{what}" if head else what, fontsize=10)
+    ax.grid(True, which="major", alpha=0.3)
+    ax.legend(fontsize=8, loc="lower left" if not why else "upper right")
+    return ax
+
+
+def plot_transient(ds: xr.Dataset, ax: Axes | None = None, *,
+                   species: str | list[str] | None = None) -> Axes:
+    """Ensemble mean +/- one standard deviation of the counts against the continuum.
+
+    Parameters
+    ----------
+    ds : xarray.Dataset  With ``count_mean``, ``count_var`` (and ``count_continuum``) over
+        ``t`` [s]
+    ax : matplotlib Axes, optional
+    species : str or list of str, optional  Default: all species
+
+    Returns
+    -------
+    Axes
+    """
+    ax = _new_axes(ax)
+    if "count_mean" not in ds or "t" not in ds.coords:
+        return _note(ax, "this file has no count_mean(species, t): no transient to show")
+    names = [str(s) for s in ds["species"].values]
+    chosen = names if species is None else ([species] if isinstance(species, str) else species)
+    t = np.asarray(ds["t"].values, dtype=float)
+    scale, prefix = _engineering(float(np.max(np.abs(t))) if t.size else 1.0)
+    ts = t / scale
+    n_traj = ds.attrs.get("trajectories")
+    for i, name in enumerate(chosen):
+        color = f"C{i % 10}"
+        label = _species_label(name)
+        mean = np.asarray(ds["count_mean"].sel(species=name).values, dtype=float)
+        if "count_var" in ds:
+            sd = np.sqrt(np.maximum(np.asarray(ds["count_var"].sel(species=name).values,
+                                               dtype=float), 0.0))
+            ax.fill_between(ts, mean - sd, mean + sd, color=color, alpha=0.2, lw=0,
+                            label=f"{label}: ± 1 standard deviation")
+        ax.plot(ts, mean, color=color, lw=1.2, label=f"{label}: ensemble mean")
+        if "count_continuum" in ds:
+            cont = np.asarray(ds["count_continuum"].sel(species=name).values, dtype=float)
+            ax.plot(ts, cont, color="k", lw=1.0, ls="--",
+                    label="continuum rate equations" if i == 0 else None)
+    ax.set_xlabel(f"time t [{prefix}s]")
+    ax.set_ylabel("count in the volume")
+    ax.set_xlim(ts[0], ts[-1])
+    head = _title(ds)
+    sub = "transient" + (f" ({n_traj} trajectories)" if n_traj else "")
+    ax.set_title(f"{head}\n{sub}" if head else sub, fontsize=10)
+    ax.grid(True, alpha=0.3)
+    ax.legend(fontsize=8)
+    return ax
+
+
+def plot_histogram(ds: xr.Dataset, species: str, ax: Axes | None = None) -> Axes:
+    """Stationary count distribution against the Poisson law of the same mean.
+
+    Parameters
+    ----------
+    ds : xarray.Dataset  With ``count_histogram`` (species, count_value): time-weighted
+        probabilities of each count; ``count_histogram_exact`` is drawn where present
+    species : str  Species name
+    ax : matplotlib Axes, optional
+
+    Returns
+    -------
+    Axes
+
+    Notes
+    -----
+    A one-variable birth-death process with constant generation and first-order loss has a
+    Poisson stationary law (var = mean, physics.md); departures show the correlations the
+    other channels bring (e.g. a pair constraint narrows the law, Darvey, Ninham & Staff,
+    J. Chem. Phys. 45, 2145, 1966).
+    """
+    from scipy import stats
+
+    ax = _new_axes(ax)
+    if "count_histogram" not in ds:
+        return _note(ax, "this file has no count_histogram(species, count_value):\n"
+                         "no stationary distribution to show")
+    h = ds["count_histogram"].sel(species=species)
+    n = np.asarray(h["count_value"].values, dtype=float)
+    p = np.asarray(h.values, dtype=float)
+    total = float(np.sum(p))
+    if not total > 0:
+        return _note(ax, f"count_histogram of {species} is empty")
+    p = p / total
+    mean = float(np.sum(n * p))
+    var = float(np.sum((n - mean) ** 2 * p))
+    # show the support: where either law has non-negligible probability
+    pois_all = stats.poisson.pmf(n, mean)
+    shown = np.nonzero((p > 1e-4 * p.max()) | (pois_all > 1e-4 * pois_all.max()))[0]
+    window = slice(shown[0], shown[-1] + 1)
+    n, p = n[window], p[window]
+    ax.bar(n, p, width=0.9 if n.size < 60 else 1.0, color=_MC_COLOR, alpha=0.6,
+           label="exact (master equation)" if "probability_outside" in ds
+           else "Monte Carlo (time-weighted)")
+    pois = stats.poisson.pmf(n, mean)
+    marker = "o" if n.size <= 60 else None
+    ax.plot(n, pois, color="k", lw=1.0, marker=marker, ms=3,
+            label=f"Poisson, same mean {mean:.3g}")
+    if "count_histogram_exact" in ds:
+        ex = np.asarray(ds["count_histogram_exact"].sel(species=species).values,
+                        dtype=float)[window]
+        ax.plot(n, ex, color=_CORNER_COLOR, lw=0, marker="x", ms=6, mew=1.5, zorder=3,
+                label="exact law")
+    ax.set_xlabel(f"count of {_species_label(species)}")
+    ax.set_ylabel("probability")
+    fano = var / mean if mean > 0 else float("nan")
+    ax.text(0.98, 0.97, f"mean {mean:.4g}\nvariance {var:.4g}\nvariance/mean {fano:.3g}",
+            transform=ax.transAxes, ha="right", va="top", fontsize=8,
+            bbox={"boxstyle": "round", "fc": "white", "ec": "0.8"})
+    head = _title(ds)
+    sub = f"stationary distribution: {_species_label(species)}"
+    ax.set_title(f"{head}\n{sub}" if head else sub, fontsize=10)
+    top = max(float(np.max(p)), float(np.max(pois_all[window])))
+    ax.set_ylim(0, 1.5 * top)  # headroom for the legend and the summary box
+    ax.legend(fontsize=8, loc="upper left")
+    ax.grid(True, axis="y", alpha=0.3)
+    return ax
+
+
+def plot_event_rates(ds: xr.Dataset, ax: Axes | None = None) -> Axes:
+    """Horizontal bars of the mean event rate per channel, log scale.
+
+    Parameters
+    ----------
+    ds : xarray.Dataset  With ``event_rate`` (channel) [1/s per trajectory]
+    ax : matplotlib Axes, optional
+
+    Returns
+    -------
+    Axes
+    """
+    if "event_rate" not in ds:
+        return _note(_new_axes(ax), "this file has no event_rate(channel)")
+    names = [str(c) for c in ds["channel"].values]
+    rates = np.asarray(ds["event_rate"].values, dtype=float)
+    ax = _new_axes(ax, (7.5, 0.9 + 0.32 * len(names)))
+    y = np.arange(len(names))
+    positive = rates > 0
+    floor = float(np.min(rates[positive])) / 10 if np.any(positive) else 1.0
+    ax.barh(y[positive], rates[positive], color=_MC_COLOR, height=0.7)
+    ax.set_xscale("log")
+    for yi, r in zip(y, rates):
+        if r > 0:
+            ax.annotate(f"{r:.3g} /s", xy=(r, yi), xytext=(3, 0), textcoords="offset points",
+                        va="center", fontsize=7)
+        else:
+            ax.annotate("no events", xy=(0, yi), xycoords=("axes fraction", "data"),
+                        xytext=(4, 0), textcoords="offset points", va="center", fontsize=7,
+                        color="0.4", style="italic")
+    ax.set_yticks(y, names, fontsize=8)
+    ax.set_ylim(len(names) - 0.4, -0.6)  # first channel on top, room for every row
+    hi = float(np.max(rates[positive])) if np.any(positive) else 10.0
+    ax.set_xlim(floor, hi * 30)
+    ax.set_xlabel("mean event rate per trajectory [1/s]")
+    head = _title(ds)
+    ax.set_title(f"{head}\nevent channels" if head else "event channels", fontsize=10)
+    ax.grid(True, axis="x", which="major", alpha=0.3)
+    return ax
+
+
+# --------------------------------------------------------------------------------------------
+def _grid(n: int, size: tuple[float, float] = _PANEL) -> tuple[Any, list[Axes]]:
+    from matplotlib.figure import Figure
+
+    ncols = 1 if n == 1 else 2
+    nrows = -(-n // ncols)
+    fig = Figure(figsize=(size[0] * ncols, size[1] * nrows), layout="constrained")
+    axes = [fig.add_subplot(nrows, ncols, i + 1) for i in range(n)]
+    return fig, axes
+
+
+def plot_all(path_nc: str | os.PathLike[str], outdir: str | os.PathLike[str] | None = None
+             ) -> list[Path]:
+    """Write the figures of an output file as PNGs.
+
+    Parameters
+    ----------
+    path_nc : path  Output NetCDF file
+    outdir : path, optional  Directory for the PNGs (default: next to the file)
+
+    Returns
+    -------
+    list of Path  Written files, among ``<stem>_psd.png`` (count spectra, one panel per
+        species), ``<stem>_current_psd.png``, ``<stem>_transient.png``,
+        ``<stem>_histogram.png``, ``<stem>_rates.png``; a figure whose variables the file
+        lacks is skipped.  A sweep file is drawn at its first point (noted in the titles).
+    """
+    import xarray as xr
+
+    path_nc = Path(path_nc)
+    out = Path(outdir) if outdir is not None else path_nc.parent
+    out.mkdir(parents=True, exist_ok=True)
+    with xr.open_dataset(path_nc) as opened:
+        ds = opened.load()
+    if "sweep" in ds.dims:
+        n_sweep = ds.sizes["sweep"]
+        ds = ds.isel(sweep=0)
+        ds.attrs["_grmc_plot_note"] = f"(sweep point 1 of {n_sweep})"
+    stem = path_nc.stem
+    written: list[Path] = []
+
+    def save(fig: Any, name: str) -> None:
+        target = out / f"{stem}_{name}.png"
+        tmp = target.with_name(f".{target.name}.tmp")
+        fig.savefig(tmp, dpi=DPI, format="png")
+        os.replace(tmp, target)
+        written.append(target)
+
+    names = [str(s) for s in ds["species"].values] if "species" in ds.coords else []
+    if "psd" in ds and names:
+        fig, axes = _grid(len(names))
+        for name, ax in zip(names, axes):
+            plot_psd(ds, name, ax=ax)
+        save(fig, "psd")
+    if "current_psd" in ds:
+        fig, (ax,) = _grid(1, (7.2, 4.8))
+        plot_psd(ds, "current", ax=ax)
+        save(fig, "current_psd")
+    if "count_mean" in ds and names:
+        fig, axes = _grid(len(names), (6.4, 3.8))
+        for name, ax in zip(names, axes):
+            plot_transient(ds, ax=ax, species=name)
+        save(fig, "transient")
+    if "count_histogram" in ds and names:
+        fig, axes = _grid(len(names), (6.4, 3.8))
+        for name, ax in zip(names, axes):
+            plot_histogram(ds, name, ax=ax)
+        save(fig, "histogram")
+    if "event_rate" in ds:
+        n_ch = ds.sizes.get("channel", 1)
+        fig, (ax,) = _grid(1, (8.0, 1.3 + 0.3 * n_ch))
+        plot_event_rates(ds, ax=ax)
+        save(fig, "rates")
+    return written

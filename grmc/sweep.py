@@ -1,0 +1,383 @@
+"""``grmc sweep``: where do continuum answers fail?  Parameter sweeps on Dask.
+
+Each sweep point is one scenario with some keys changed.  It is solved exactly (master
+equation) where the state space is small and by Monte Carlo otherwise, chosen per point and
+recorded.  Points run as one task each on a dask.distributed cluster (a LocalCluster with
+one single-threaded worker per core by default, or an existing scheduler given by its
+address); the client gathers results as they complete, saves every finished point at once
+(so ``--resume`` loses nothing), and writes the stacked file once at the end.
+
+Point ``i`` is seeded from ``(seed, i)`` only, so results do not depend on where or in which
+order points ran.
+
+For each species the sweep file holds the relative deviation of the exact/Monte Carlo mean,
+variance and relaxation time from the continuum and linear-noise answers, with uncertainties:
+
+    dev_mean = <N> / N_continuum - 1,   dev_var = var(N) / var_LNA - 1,
+    dev_tau  = tau / tau_LNA - 1,
+
+where tau is the integrated correlation time S(0) / (4 var) of each count (for a single
+Lorentzian this is its time constant; van Vliet, Proc. IRE 46, 1004, 1958 - from memory).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import hashlib
+import itertools
+import json
+import math
+import os
+import tomllib
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from .scenario import SCHEMA, Scenario, ScenarioError, parse_scenario, set_key
+
+__all__ = ["Vary", "parse_vary", "sweep_points", "point_scenario", "evaluate_point",
+           "run_sweep", "assemble", "crossing_count", "EXACT_STATE_LIMIT"]
+
+#: Largest exact state space a sweep point uses before it falls back to Monte Carlo.
+EXACT_STATE_LIMIT = 200_000
+#: A relative deviation of this size marks where the continuum answer fails.
+DEVIATION_THRESHOLD = 0.10
+
+
+@dataclass(frozen=True)
+class Vary:
+    """One ``--vary KEY=START:STOP:N[:log]``."""
+
+    key: str
+    values: tuple[float, ...]
+    log: bool = False
+
+
+def parse_vary(text: str) -> Vary:
+    """Parse ``section.key=START:STOP:N[:log]``.
+
+    Raises
+    ------
+    ValueError  With a message naming what is wrong.
+    """
+    if "=" not in text:
+        raise ValueError(f"{text!r}: expected KEY=START:STOP:N[:log]")
+    key, spec = text.split("=", 1)
+    key = key.strip()
+    parts = spec.split(":")
+    if len(parts) not in (3, 4) or (len(parts) == 4 and parts[3] not in ("log", "lin")):
+        raise ValueError(f"{text!r}: expected KEY=START:STOP:N[:log]")
+    try:
+        start, stop, n = float(parts[0]), float(parts[1]), int(parts[2])
+    except ValueError:
+        raise ValueError(f"{text!r}: START and STOP must be numbers and N a whole number") \
+            from None
+    if n < 1:
+        raise ValueError(f"{text!r}: N must be >= 1")
+    log = len(parts) == 4 and parts[3] == "log"
+    if log:
+        if start <= 0 or stop <= 0:
+            raise ValueError(f"{text!r}: a log range needs START and STOP > 0")
+        values = np.geomspace(start, stop, n)
+    else:
+        values = np.linspace(start, stop, n)
+    return Vary(key=key, values=tuple(float(v) for v in values), log=log)
+
+
+def sweep_points(varies: list[Vary]) -> list[dict[str, float]]:
+    """All combinations, the first ``--vary`` varying slowest."""
+    return [dict(zip([v.key for v in varies], combo))
+            for combo in itertools.product(*[v.values for v in varies])]
+
+
+def _typed(key: str, value: float) -> Any:
+    parts = key.split(".")
+    section, name = ("traps", parts[2]) if parts[0] == "traps" and len(parts) == 3 else parts
+    spec = SCHEMA.get(section, {}).get(name)
+    if spec is None:
+        return value
+    if spec.kind == "int":
+        return int(round(value))
+    if spec.kind == "list3":  # a swept box edge: a cube
+        return [float(value)] * 3
+    return float(value)
+
+
+def point_scenario(scenario: Scenario, assignment: dict[str, float]) -> Scenario:
+    """The scenario with the keys of one sweep point set (validated again)."""
+    data = tomllib.loads(scenario.text)
+    desc = ", ".join(f"{k}={v:g}" for k, v in assignment.items())
+    src = f"{scenario.source} (--vary {desc})"
+    for key, value in assignment.items():
+        set_key(data, key, _typed(key, value), source=scenario.source)
+    scen = parse_scenario(data, source=src, text=scenario.text)
+    return scen
+
+
+def _point_seed(seed: int, index: int) -> int:
+    ss = np.random.SeedSequence(seed, spawn_key=(index,))
+    return int(ss.generate_state(1, np.uint32)[0])
+
+
+def _lna_tau(model, ss) -> tuple[np.ndarray, np.ndarray, float]:
+    from . import continuum
+
+    lna = continuum.lna(model, x=ss)
+    var = np.diag(lna.covariance).copy()
+    times = np.asarray(lna.relaxation_times, dtype=float)
+    f0 = 1e-4 / (2 * math.pi * times.max()) if times.size else 1.0
+    s0 = np.real(np.einsum("iif->if", continuum.lna_psd(model, np.array([f0]), x=ss)))[:, 0]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        tau = np.where(var > 0, s0 / (4 * var), np.nan)
+    return var, tau, f0
+
+
+def evaluate_point(scenario: Scenario, index: int, *, exact_limit: int = EXACT_STATE_LIMIT
+                   ) -> dict:
+    """Solve one sweep point: exact where small, Monte Carlo otherwise.
+
+    Returns
+    -------
+    dict of JSON-ready values: ``index``, ``method``, ``species`` and per species lists
+    ``mean``, ``mean_err``, ``var``, ``var_err``, ``tau``, ``tau_err``, ``continuum``,
+    ``var_lna``, ``tau_lna``.
+    """
+    from . import continuum, exact
+    from .model import build_model
+
+    model = build_model(scenario)
+    ss = continuum.steady_state(model)
+    var_lna, tau_lna, f0 = _lna_tau(model, ss)
+    out: dict[str, Any] = {"index": index, "species": list(model.species)}
+    try:
+        res = exact.solve(model, freqs=np.array([f0]), max_states=exact_limit)
+        s0 = res.psd[:, 0]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            tau = np.where(res.var > 0, s0 / (4 * res.var), np.nan)
+        zeros = np.zeros(model.n_species)
+        out.update(method="exact", n_states=int(res.n_states), mean=res.mean, mean_err=zeros,
+                   var=res.var, var_err=zeros, tau=tau, tau_err=zeros,
+                   probability_outside=float(res.mass_outside))
+    except exact.StateSpaceTooLarge:
+        from .simulate import run
+
+        seed = _point_seed(scenario.run.seed, index)
+        ds = run(scenario, seed=seed, workers=1, progress=False)
+        var = ds["stationary_var"].values
+        plateau = ds["plateau"].values
+        plateau_err = ds["plateau_stderr"].values
+        with np.errstate(divide="ignore", invalid="ignore"):
+            tau = plateau / (4 * var)
+            tau_err = np.abs(tau) * np.hypot(plateau_err / plateau,
+                                             ds["stationary_var_stderr"].values / var)
+        out.update(method="monte carlo", seed=seed, trajectories=int(ds.attrs["trajectories"]),
+                   mean=ds["stationary_mean"].values, mean_err=ds["stationary_mean_stderr"].values,
+                   var=var, var_err=ds["stationary_var_stderr"].values, tau=tau, tau_err=tau_err)
+    out.update(continuum=ss, var_lna=var_lna, tau_lna=tau_lna)
+    return {k: (np.asarray(v, dtype=float).tolist() if isinstance(v, np.ndarray) else v)
+            for k, v in out.items()}
+
+
+def _evaluate_task(scenario: Scenario, assignment: dict, index: int) -> dict:
+    """One Dask task: build the point's scenario and solve it."""
+    res = evaluate_point(point_scenario(scenario, assignment), index)
+    res["assignment"] = assignment
+    return res
+
+
+def _signature(scenario: Scenario, varies: list[Vary]) -> str:
+    text = scenario.text + "\n" + json.dumps([dataclasses.asdict(v) for v in varies])
+    return hashlib.sha256(text.encode()).hexdigest()[:16]
+
+
+def _atomic_json(path: Path, obj) -> None:
+    tmp = path.with_suffix(path.suffix + ".part")
+    tmp.write_text(json.dumps(obj))
+    os.replace(tmp, path)
+
+
+def _parts_dir(out: Path) -> Path:
+    return out.with_name(out.name + ".parts")
+
+
+def run_sweep(scenario: Scenario, varies: list[Vary], out: str | Path, *,
+              scheduler: str | None = None, resume: bool = False, workers: int | None = None,
+              command: str | None = None, max_points: int | None = None) -> Path:
+    """Run every sweep point on Dask and write the stacked file.
+
+    Parameters
+    ----------
+    scenario : Scenario  The base scenario
+    varies : list of Vary  The swept keys
+    out : path  The sweep file
+    scheduler : str, optional  Address of a running Dask scheduler; default a LocalCluster
+        (one single-threaded worker per core, no dashboard)
+    resume : bool  Keep the points an earlier, interrupted run of the same sweep finished
+    workers : int, optional  LocalCluster workers (default: all cores)
+    command : str, optional  Command line recorded in ``history``
+    max_points : int, optional  Stop after this many new points (leaves the sweep
+        unfinished, as an interruption would; used to test ``resume``)
+
+    Returns
+    -------
+    Path  The sweep file (not written while points are missing).
+
+    Raises
+    ------
+    ScenarioError  A swept key or value the scenario format rejects.
+    """
+    from .dataset import save
+    from .engine.ensemble import default_workers
+
+    out = Path(out)
+    points = sweep_points(varies)
+    # validate every point before anything runs (bad keys and values exit 2, nothing written)
+    for assignment in points:
+        point_scenario(scenario, assignment)
+    parts = _parts_dir(out)
+    sig = _signature(scenario, varies)
+    manifest = parts / "manifest.json"
+    done: dict[int, dict] = {}
+    if parts.exists():
+        old = json.loads(manifest.read_text()) if manifest.exists() else {}
+        if not resume:
+            raise ScenarioError(str(out), "", "", f"an unfinished sweep is in {parts}; "
+                                "add --resume to continue it or delete that folder")
+        if old.get("signature") != sig:
+            raise ScenarioError(str(out), "", "", f"{parts} belongs to a different sweep "
+                                "(scenario or --vary changed); delete it to start afresh")
+        for f in sorted(parts.glob("point_*.json")):
+            res = json.loads(f.read_text())
+            done[int(res["index"])] = res
+    else:
+        parts.mkdir(parents=True)
+        _atomic_json(manifest, {"signature": sig, "points": len(points)})
+
+    todo = [i for i in range(len(points)) if i not in done]
+    if max_points is not None:
+        todo = todo[:max_points]
+    if todo:
+        from dask.distributed import Client, LocalCluster, as_completed
+
+        cluster = None
+        if scheduler:
+            client = Client(scheduler)
+        else:
+            n = workers or default_workers()
+            cluster = LocalCluster(n_workers=min(n, len(todo)), threads_per_worker=1,
+                                   dashboard_address=None, processes=True)
+            client = Client(cluster)
+        try:
+            futures = [client.submit(_evaluate_task, scenario, points[i], i, pure=False)
+                       for i in todo]
+            for fut in as_completed(futures):
+                res = fut.result()
+                _atomic_json(parts / f"point_{res['index']:05d}.json", res)
+                done[int(res["index"])] = res
+        finally:
+            client.close()
+            if cluster is not None:
+                cluster.close()
+    if len(done) < len(points):
+        return out
+    ds = assemble(scenario, varies, [done[i] for i in range(len(points))], command=command)
+    save(ds, out)
+    for f in parts.glob("*"):
+        f.unlink()
+    parts.rmdir()
+    return out
+
+
+def assemble(scenario: Scenario, varies: list[Vary], results: list[dict], *,
+             command: str | None = None):
+    """Stack point results along ``sweep`` and add the relative deviations."""
+    import xarray as xr
+
+    from .dataset import finish
+
+    species = results[0]["species"]
+
+    def stack(name):
+        return np.array([r[name] for r in results], dtype=float)
+
+    data = {}
+    for name in ("mean", "mean_err", "var", "var_err", "tau", "tau_err", "continuum",
+                 "var_lna", "tau_lna"):
+        data[name] = stack(name)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        dev = {
+            "mean": (data["mean"] / data["continuum"] - 1, data["mean_err"] / data["continuum"]),
+            "var": (data["var"] / data["var_lna"] - 1, data["var_err"] / data["var_lna"]),
+            "tau": (data["tau"] / data["tau_lna"] - 1, data["tau_err"] / data["tau_lna"]),
+        }
+    sw = ("sweep", "species")
+    variables = {
+        "stationary_mean": (sw, data["mean"]),
+        "stationary_mean_stderr": (sw, data["mean_err"]),
+        "stationary_var": (sw, data["var"]),
+        "stationary_var_stderr": (sw, data["var_err"]),
+        "steady_continuum": (sw, data["continuum"]),
+        "var_lna": (sw, data["var_lna"]),
+        "tau_correlation": (sw, data["tau"]),
+        "tau_correlation_stderr": (sw, data["tau_err"]),
+        "tau_correlation_lna": (sw, data["tau_lna"]),
+        "deviation_mean": (sw, dev["mean"][0]),
+        "deviation_mean_stderr": (sw, dev["mean"][1]),
+        "deviation_var": (sw, dev["var"][0]),
+        "deviation_var_stderr": (sw, dev["var"][1]),
+        "deviation_tau": (sw, dev["tau"][0]),
+        "deviation_tau_stderr": (sw, dev["tau"][1]),
+        "method": (("sweep",), np.array([r["method"] for r in results], dtype=object)),
+    }
+    coords = {
+        "sweep": ("sweep", np.arange(len(results), dtype=np.int64)),
+        "species": ("species", np.array(species, dtype=object)),
+    }
+    for v in varies:
+        coords[v.key] = ("sweep", np.array([r["assignment"][v.key] for r in results]))
+    ds = xr.Dataset(variables, coords=coords)
+    for v in varies:
+        ds[v.key].attrs.update({"long_name": f"swept scenario key {v.key}",
+                                "units": _key_units(v.key)})
+    ds = finish(ds, title=scenario.title, scenario_toml=scenario.text, command=command,
+                kind="sweep", swept_keys=" ".join(v.key for v in varies),
+                deviation_threshold=DEVIATION_THRESHOLD, seed=int(scenario.run.seed))
+    for name in ("method",):
+        ds[name].attrs.update({"long_name": "exact or monte carlo", "units": "1"})
+    return ds
+
+
+def _key_units(key: str) -> str:
+    """UDUNITS string from the unit suffix of a scenario key."""
+    suffixes = {"_cm3": "cm-3", "_cm3_s": "cm3 s-1", "_cm6_s": "cm6 s-1", "_cm2": "cm2",
+                "_eV": "eV", "_K": "K", "_s": "s", "_nm": "nm", "_V": "V", "_cm": "cm",
+                "_cm_s": "cm s-1", "_cm2_Vs": "cm2 V-1 s-1"}
+    name = key.split(".")[-1]
+    if name == "volume_cm3":
+        return "cm3"
+    if name.endswith("density_cm3") or name.endswith("_cm3") and "capture" not in name:
+        return "cm-3"
+    for suffix, units in sorted(suffixes.items(), key=lambda kv: -len(kv[0])):
+        if name.endswith(suffix):
+            return units
+    return "1"
+
+
+def crossing_count(mean_count: np.ndarray, deviation: np.ndarray,
+                   threshold: float = DEVIATION_THRESHOLD) -> float | None:
+    """Mean count at which |deviation| falls through ``threshold`` (log-interpolated).
+
+    Returns the largest count where the deviation, coming from large counts, first exceeds the
+    threshold; None when it never crosses within the sweep.
+    """
+    order = np.argsort(mean_count)[::-1]
+    x = np.asarray(mean_count, dtype=float)[order]
+    y = np.abs(np.asarray(deviation, dtype=float)[order])
+    for k in range(1, len(x)):
+        if y[k - 1] < threshold <= y[k] and x[k] > 0 and x[k - 1] > 0:
+            ly0, ly1 = math.log(max(y[k - 1], 1e-300)), math.log(y[k])
+            w = (math.log(threshold) - ly0) / (ly1 - ly0) if ly1 != ly0 else 0.0
+            return float(math.exp(math.log(x[k - 1]) + w * (math.log(x[k]) - math.log(x[k - 1]))))
+    return None

@@ -1,0 +1,109 @@
+"""The command line: bad input exits 2 with one clear message; help is cheap."""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+from grmc.cli import main
+
+GOOD = """
+title = "cli box"
+[material]
+temperature_K = 300.0
+intrinsic_density_cm3 = 1.0e10
+radiative_cm3_s = 1.0e-10
+acceptors_cm3 = 1.0e17
+[volume]
+volume_cm3 = 1.0e-15
+[[traps]]
+label = "deep"
+count = 20
+energy_eV = 0.1
+electron_capture_cm3_s = 1.0e-8
+hole_capture_cm3_s = 1.0e-8
+[run]
+trajectories = 4
+duration_s = 1.0e-7
+samples = 64
+"""
+
+
+def _write(tmp_path: Path, text: str, name: str = "s.toml") -> Path:
+    path = tmp_path / name
+    path.write_text(text)
+    return path
+
+
+BAD_CASES = [
+    ("negative coefficient", ("radiative_cm3_s = 1.0e-10", "radiative_cm3_s = -1.0e-10"),
+     "[material] radiative_cm3_s"),
+    ("misspelt key", ("acceptors_cm3", "acceptor_cm3"), "[material] acceptor_cm3"),
+    ("size and volume", ("volume_cm3 = 1.0e-15", "volume_cm3 = 1.0e-15\nsize_nm = [5, 5, 5]"),
+     "[volume] volume_cm3"),
+    ("zero volume", ("volume_cm3 = 1.0e-15", "volume_cm3 = 0.0"), "[volume] volume_cm3"),
+    ("duplicate trap label", ("[run]", GOOD[GOOD.index("[[traps]]"):GOOD.index("[run]")]
+                              + "[run]"), "[traps.deep] label"),
+]
+
+
+@pytest.mark.parametrize("name, edit, where", BAD_CASES, ids=[c[0] for c in BAD_CASES])
+@pytest.mark.parametrize("command", ["inspect", "run"])
+def test_bad_scenario_exits_2_naming_the_key(tmp_path, capsys, name, edit, where, command):
+    path = _write(tmp_path, GOOD.replace(*edit, 1))
+    out = tmp_path / "out.nc"
+    argv = [command, str(path)] + (["-o", str(out)] if command == "run" else [])
+    assert main(argv) == 2
+    err = capsys.readouterr().err
+    assert where in err and str(path) in err
+    assert "Traceback" not in err and err.count("\n") == 1
+    assert not out.exists() and not list(tmp_path.glob("*.part"))
+
+
+def test_not_toml_and_missing_file(tmp_path, capsys):
+    path = _write(tmp_path, "title = [unclosed\n")
+    assert main(["inspect", str(path)]) == 2
+    err = capsys.readouterr().err
+    assert "not valid TOML" in err and str(path) in err
+    assert main(["inspect", str(tmp_path / "nope.toml")]) == 2
+    err = capsys.readouterr().err
+    assert "no such file" in err and "nope.toml" in err
+
+
+def test_bad_scenario_in_a_fresh_process_has_no_traceback(tmp_path):
+    path = _write(tmp_path, GOOD.replace("acceptors_cm3", "acceptor_cm3"))
+    proc = subprocess.run([sys.executable, "-m", "grmc", "inspect", str(path)],
+                          capture_output=True, text=True, timeout=120)
+    assert proc.returncode == 2
+    assert "[material] acceptor_cm3" in proc.stderr and "did you mean" in proc.stderr
+    assert "Traceback" not in proc.stderr
+
+
+def test_bad_argument_exits_2(capsys):
+    with pytest.raises(SystemExit) as exc:
+        main(["run", "x.toml", "--trajectories", "0"])
+    assert exc.value.code == 2
+
+
+def test_help_imports_nothing_heavy():
+    code = ("import sys; import grmc, grmc.cli; "
+            "heavy = [m for m in ('numba', 'xarray', 'matplotlib', 'dask', 'scipy') "
+            "if m in sys.modules]; print(heavy)")
+    proc = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                          timeout=60)
+    assert proc.stdout.strip() == "[]", proc.stdout + proc.stderr
+
+
+def test_inspect_json_has_the_contract_keys(tmp_path, capsys):
+    path = _write(tmp_path, GOOD)
+    assert main(["inspect", str(path), "--json"]) == 0
+    info = json.loads(capsys.readouterr().out)
+    for key in ("volume_cm3", "species", "steady_continuum", "var_lna", "counts"):
+        assert key in info
+    assert info["species"] == ["electrons", "holes", "trapped:deep"]
+    assert info["counts"]["acceptors"] == 100 and info["counts"]["T_deep"] == 20
+    assert set(info["steady_continuum"]) == set(info["species"])

@@ -1,0 +1,233 @@
+"""Tests of grmc.export: CSV tables and Verilog-A noise sources.
+
+References: the Verilog-A form follows Accellera Verilog-AMS LRM 2.4 (2014), sections
+4.6.4.3 (noise_table: (frequency, power) pairs, ascending, linear interpolation) and 4.6.4.4
+(noise_table_log); the synthetic spectra are van Vliet's one-level Lorentzian (Proc. IRE 46,
+1004, 1958, from memory) and the intervals Welch's chi-squared intervals (IEEE Trans. Audio
+Electroacoust. 15, 70, 1967).
+"""
+
+from __future__ import annotations
+
+import math
+import re
+
+import numpy as np
+import pytest
+import xarray as xr
+
+from grmc import export, spectra
+
+K = 32
+TAU = {"electrons": 2e-7, "holes": 2e-7, "trapped:deep": 5e-7}
+VAR = {"electrons": 40.0, "holes": 40.0, "trapped:deep": 2.0}
+SCENARIO = """title = "test bar"
+[material]
+temperature_K = 300.0
+intrinsic_density_cm3 = 1.0e10
+[readout]
+bias_V = 1.5
+length_cm = 1.0e-4
+electron_mobility_cm2_Vs = 1400.0
+hole_mobility_cm2_Vs = 450.0
+"""
+
+
+def make_dataset(*, noisy: bool = True, current: bool = True, seed: int = 0) -> xr.Dataset:
+    """A small output Dataset with interface.md names: Lorentzian spectra (van Vliet) with
+    chi^2_{2K}/2K scatter and Welch intervals."""
+    rng = np.random.default_rng(seed)
+    t_seg, n_freq = 1e-5, 1024
+    f = np.arange(1, n_freq + 1) / t_seg
+    species = list(TAU)
+    lna = np.array([spectra.lorentzian(f, VAR[s], TAU[s]) for s in species])
+    psd = lna * (rng.chisquare(2 * K, lna.shape) / (2 * K) if noisy else 1.0)
+    low, high = spectra.welch_interval(psd, K)
+    ds = xr.Dataset(
+        {
+            "psd": (("species", "frequency"), psd, {"units": "Hz-1"}),
+            "psd_low": (("species", "frequency"), low, {"units": "Hz-1"}),
+            "psd_high": (("species", "frequency"), high, {"units": "Hz-1"}),
+            "psd_lna": (("species", "frequency"), lna, {"units": "Hz-1"}),
+        },
+        coords={"frequency": ("frequency", f, {"units": "Hz"}), "species": species},
+        attrs={"title": "test bar", "scenario_toml": SCENARIO},
+    )
+    if current:
+        a_e, a_h = spectra.current_scale(
+            {"bias_V": 1.5, "length_cm": 1e-4, "electron_mobility_cm2_Vs": 1400.0,
+             "hole_mobility_cm2_Vs": 450.0})
+        # electrons and holes fully correlated here (pairs): S_I = (a_e + a_h)^2 S_ee
+        ds["current_psd"] = ("frequency", (a_e + a_h) ** 2 * psd[0], {"units": "A2 Hz-1"})
+        ds["current_psd_lna"] = ("frequency", (a_e + a_h) ** 2 * lna[0], {"units": "A2 Hz-1"})
+        ds["current_mean"] = ((), 1e-6, {"units": "A"})
+    return ds
+
+
+def read_csv(path):
+    lines = path.read_text().splitlines()
+    header = [ln for ln in lines if ln.startswith("#")]
+    # (genfromtxt would take the first comment line for the names: skip the header)
+    table = np.genfromtxt(path, delimiter=",", skip_header=len(header), names=True)
+    return header, table
+
+
+# --------------------------------------------------------------------------------------------
+def test_csv_current_default(tmp_path):
+    ds = make_dataset()
+    out = export.export_csv(ds, tmp_path / "spec.csv")
+    header, tab = read_csv(out)
+    text = "\n".join(header)
+    assert "test bar" in text and "A^2/Hz" in text and "one-sided" in text
+    assert "Welch" in text and "K = 32" in text and "1.5 V" in text
+    assert tab.dtype.names == ("frequency_Hz", "psd", "psd_low", "psd_high", "psd_lna")
+    np.testing.assert_allclose(tab["frequency_Hz"], ds.frequency, rtol=1e-10)
+    np.testing.assert_allclose(tab["psd"], ds.current_psd, rtol=1e-10)
+    np.testing.assert_allclose(tab["psd_lna"], ds.current_psd_lna, rtol=1e-10)
+    # no current_psd_low in the file: the interval is the same relative chi^2 interval as
+    # the counts' (same K), i.e. Welch's interval of the current estimate
+    lo, hi = spectra.welch_interval(ds.current_psd.values, K)
+    np.testing.assert_allclose(tab["psd_low"], lo, rtol=1e-9)
+    np.testing.assert_allclose(tab["psd_high"], hi, rtol=1e-9)
+
+
+def test_csv_species_and_errors(tmp_path):
+    ds = make_dataset(current=False)
+    del ds.attrs["scenario_toml"]  # bias absent: accepted, just not reported
+    out = export.export_csv(ds, tmp_path / "e.csv")  # default: electrons
+    header, tab = read_csv(out)
+    assert any("counts^2/Hz" in h for h in header)
+    assert not any("bias" in h for h in header)
+    np.testing.assert_allclose(tab["psd"], ds.psd.sel(species="electrons"), rtol=1e-10)
+    out = export.export_csv(ds, tmp_path / "t.csv", quantity="trapped:deep")
+    _, tab = read_csv(out)
+    np.testing.assert_allclose(tab["psd_high"], ds.psd_high.sel(species="trapped:deep"),
+                               rtol=1e-10)
+    with pytest.raises(ValueError, match="unknown quantity 'photons'.*electrons"):
+        export.export_csv(ds, tmp_path / "x.csv", quantity="photons")
+    with pytest.raises(ValueError, match="no current_psd"):
+        export.export_csv(ds, tmp_path / "x.csv", quantity="current")
+    ds.attrs["readout_bias_V"] = 0.25
+    header, _ = read_csv(export.export_csv(ds, tmp_path / "b.csv"))
+    assert any("0.25 V" in h for h in header)
+    # a sweep file must be reduced to one point first
+    swept = xr.concat([ds, ds], dim="sweep")
+    with pytest.raises(ValueError, match="isel"):
+        export.export_csv(swept, tmp_path / "s.csv")
+    assert not (tmp_path / "x.csv").exists() and not (tmp_path / "s.csv").exists()
+
+
+@pytest.mark.parametrize("interpolation, func", [("linear", "noise_table"),
+                                                 ("log", "noise_table_log")])
+def test_verilog_a_inline_round_trip(tmp_path, interpolation, func):
+    ds = make_dataset()
+    va, tbl = export.export_verilog_a(ds, tmp_path / "bar noise.va",
+                                      interpolation=interpolation)
+    text = va.read_text()
+    assert '`include "disciplines.vams"' in text
+    assert re.search(r"^module bar_noise\(p, n\);$", text, re.MULTILINE)
+    assert f"I(p, n) <+ {func}('{{" in text
+    assert text.count("{") == text.count("}") and text.count("(") == text.count(")")
+    assert text.rstrip().endswith("endmodule")
+    f_va, s_va = export.read_noise_table(va)
+    f_tb, s_tb = export.read_noise_table(tbl)
+    np.testing.assert_array_equal(f_va, f_tb)
+    np.testing.assert_array_equal(s_va, s_tb)
+    # the same numbers as the resampled spectrum, to the printed precision (%.10e)
+    f_ex, s_ex = export.resample_spectrum(ds.frequency.values, ds.current_psd.values)
+    np.testing.assert_allclose(f_va, f_ex, rtol=1e-10)
+    np.testing.assert_allclose(s_va, s_ex, rtol=1e-10)
+    # LRM 2.4 4.6.4.3: ascending, unique, > 0; spanning the band at ~20 points per decade
+    assert np.all(np.diff(f_va) > 0) and f_va[0] > 0
+    assert f_va[0] == pytest.approx(ds.frequency[0]) and f_va[-1] == pytest.approx(
+        ds.frequency[-1])
+    decades = math.log10(f_va[-1] / f_va[0])
+    assert f_va.size == math.ceil(20 * decades) + 1
+    tbl_text = tbl.read_text()
+    assert tbl_text.startswith("# grmc noise spectrum")
+    assert "one-sided" in tbl_text and "A^2/Hz" in tbl_text and "1.5 V" in tbl_text
+
+
+def test_verilog_a_file_form_and_sources(tmp_path):
+    ds = make_dataset()
+    va, _tbl = export.export_verilog_a(ds, tmp_path / "n.va", table="file", source="lna",
+                                      module_name="my_src")
+    text = va.read_text()
+    assert 'I(p, n) <+ noise_table("n.tbl", "my_src");' in text
+    f, s = export.read_noise_table(va)  # follows the file name
+    # source="lna": the linear-noise Lorentzian (van Vliet), interpolated linearly in
+    # (x, y) = (log f, log S) between the file's frequencies.  Interpolation error bound
+    # |dy| <= h^2/8 max|y''| on each interval of width h (the textbook bound for linear
+    # interpolation); for y = -log(1 + u^2), u = f/f_c: y'' = -4 u^2 / (1 + u^2)^2.
+    a = ds.current_psd_lna.values[0] / ds.psd_lna.values[0, 0]
+    exact = a * spectra.lorentzian(f, VAR["electrons"], TAU["electrons"])
+    fd = ds.frequency.values
+    f_c = 1 / (2 * math.pi * TAU["electrons"])
+    j = np.clip(np.searchsorted(fd, f, side="right") - 1, 0, fd.size - 2)
+    h = np.log(fd[j + 1] / fd[j])
+    u2 = (np.linspace(fd[j], fd[j + 1], 50) / f_c) ** 2
+    bound = h**2 / 8 * np.max(4 * u2 / (1 + u2) ** 2, axis=0) + 1e-9
+    assert np.all(np.abs(np.log(s / exact)) <= bound)
+    # (the error is real -- up to 0.7 % in the lowest decade, where the file's grid j/T is
+    # coarse in log f -- and the bound covers it)
+    assert np.max(np.abs(np.log(s / exact))) > 1e-3
+    # source="fit": the fitted Lorentzian, consistent with analyse_spectrum
+    va2, _ = export.export_verilog_a(ds, tmp_path / "fit.va", source="fit")
+    f2, s2 = export.read_noise_table(va2)
+    lo, hi = spectra.welch_interval(ds.current_psd.values, K)
+    res = spectra.analyse_spectrum(ds.frequency.values, ds.current_psd.values, lo, hi, K)
+    assert res.kind == "one"
+    (c,) = res.components
+    np.testing.assert_allclose(s2, c.S0 / (1 + (f2 / c.f_c) ** 2), rtol=1e-9)
+
+
+def test_mc_resampling_reproduces_smooth_spectrum():
+    # Band averaging over one grid step (1/20 decade) leaves a Lorentzian unchanged to
+    # second order in the band width: within 0.5 % of the closed form; on a noisy estimate
+    # it reduces the scatter of log(S/true) where the bands hold many bins.
+    ds = make_dataset(noisy=False)
+    f, s = export.resample_spectrum(ds.frequency.values, ds.current_psd.values)
+    exact = np.interp(np.log(f), np.log(ds.frequency.values), np.log(ds.current_psd.values))
+    np.testing.assert_allclose(s, np.exp(exact), rtol=5e-3)
+    noisy = make_dataset(noisy=True, seed=3)
+    f, s = export.resample_spectrum(noisy.frequency.values, noisy.current_psd.values)
+    true = np.exp(np.interp(np.log(f), np.log(ds.frequency.values),
+                            np.log(ds.current_psd.values)))
+    high = f > 1e7  # bands of >= 50 bins
+    raw = noisy.current_psd.values / ds.current_psd.values
+    assert np.std(np.log(s[high] / true[high])) < 0.5 * np.std(np.log(raw))
+
+
+def test_verilog_a_refuses_counts(tmp_path):
+    ds = make_dataset()
+    with pytest.raises(ValueError, match="not a current"):
+        export.export_verilog_a(ds, tmp_path / "e.va", quantity="electrons")
+    with pytest.raises(ValueError, match="not a current"):
+        export.export_verilog_a(make_dataset(current=False), tmp_path / "e.va")
+    with pytest.raises(ValueError, match="identifier"):
+        export.export_verilog_a(ds, tmp_path / "e.va", module_name="9lives")
+    # nothing written, no temporary files left behind
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_atomic_replacement(tmp_path):
+    # an existing file is replaced as a whole; no temporary files remain
+    target = tmp_path / "spec.csv"
+    target.write_text("old contents that are longer than nothing\n" * 1000)
+    export.export_csv(make_dataset(), target)
+    assert target.read_text().startswith("# grmc noise spectrum")
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["spec.csv"]
+
+
+def test_read_noise_table_formats(tmp_path):
+    # both array-literal forms of the LRM (2.4: '{...}; older tools: {...}) parse
+    va = tmp_path / "x.va"
+    va.write_text('module m(p, n); electrical p, n; analog I(p, n) <+ noise_table({1e3, '
+                  '2.5e-24, 1e4, 1.0e-24}, "m"); // {9, 9}\nendmodule\n')
+    f, s = export.read_noise_table(va)
+    np.testing.assert_array_equal(f, [1e3, 1e4])
+    np.testing.assert_array_equal(s, [2.5e-24, 1e-24])
+    bad = tmp_path / "bad.tbl"
+    bad.write_text("# c\n1 2 3\n")
+    with pytest.raises(ValueError, match="frequency power"):
+        export.read_noise_table(bad)

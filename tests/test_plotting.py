@@ -1,0 +1,139 @@
+"""Tests of grmc.plotting: every figure is written as a valid PNG of sensible size.
+
+The synthetic Dataset uses the interface.md names: Lorentzian spectra (van Vliet, Proc. IRE
+46, 1004, 1958, from memory) with Welch chi-squared intervals (IEEE Trans. Audio
+Electroacoust. 15, 70, 1967), a transient relaxing exponentially toward the steady state
+(low-injection decay, common practice), Poisson/binomial count histograms.
+"""
+
+from __future__ import annotations
+
+import struct
+import subprocess
+import sys
+
+import numpy as np
+import pytest
+import xarray as xr
+from scipy import stats
+
+from grmc import plotting, spectra
+
+K = 16
+SPECIES = ["electrons", "holes", "trapped:deep"]
+CHANNELS = ["thermal pair generation", "radiative recombination", "deep: electron capture",
+            "deep: electron emission", "deep: hole capture", "deep: hole emission",
+            "Auger e-e-h"]
+
+
+def make_dataset(seed: int = 0) -> xr.Dataset:
+    rng = np.random.default_rng(seed)
+    t = np.arange(512) * 2e-6 / 512
+    f = np.arange(1, 1025) / 2e-5  # T_seg = 20 us
+    tau = np.array([1.5e-7, 1.5e-7, 4e-7])
+    var = np.array([30.0, 30.0, 0.7])
+    lna = spectra.lorentzian(f[None, :], var[:, None], tau[:, None])
+    psd = lna * rng.chisquare(2 * K, lna.shape) / (2 * K)
+    low, high = spectra.welch_interval(psd, K)
+    steady = np.array([40.0, 40.0, 1.6])
+    start = np.array([90.0, 90.0, 2.5])
+    relax = steady[:, None] + (start - steady)[:, None] * np.exp(-t[None, :] / 3e-7)
+    n_traj = 64
+    cvar = var[:, None] * (1 + 0.5 * np.exp(-t[None, :] / 3e-7))
+    cmean = relax + rng.normal(size=relax.shape) * np.sqrt(cvar / n_traj)
+    values = np.arange(0, 91)
+    hist = np.stack([stats.poisson.pmf(values, 40.0), stats.poisson.pmf(values, 40.0),
+                     stats.binom.pmf(values, 3, 1.6 / 3)])
+    hist_mc = hist * rng.chisquare(200, hist.shape) / 200
+    rates = np.array([3e5, 3e5, 2.1e8, 2.0e8, 1.1e8, 1.2e8, 0.0])
+    a = 1.6e-14
+    ds = xr.Dataset(
+        {
+            "count_mean": (("species", "t"), cmean, {"units": "1"}),
+            "count_var": (("species", "t"), cvar, {"units": "1"}),
+            "count_continuum": (("species", "t"), relax, {"units": "1"}),
+            "psd": (("species", "frequency"), psd, {"units": "Hz-1"}),
+            "psd_low": (("species", "frequency"), low, {"units": "Hz-1"}),
+            "psd_high": (("species", "frequency"), high, {"units": "Hz-1"}),
+            "psd_lna": (("species", "frequency"), lna, {"units": "Hz-1"}),
+            "current_psd": ("frequency", a**2 * psd[0], {"units": "A2 Hz-1"}),
+            "current_psd_lna": ("frequency", a**2 * lna[0], {"units": "A2 Hz-1"}),
+            "current_mean": ((), a * 40.0, {"units": "A"}),
+            "event_rate": ("channel", rates, {"units": "s-1"}),
+            "count_histogram": (("species", "count_value"), hist_mc, {"units": "1"}),
+            "count_histogram_exact": (("species", "count_value"), hist, {"units": "1"}),
+        },
+        coords={"t": ("t", t, {"units": "s"}), "frequency": ("frequency", f, {"units": "Hz"}),
+                "species": SPECIES, "channel": CHANNELS, "count_value": values},
+        attrs={"title": "box with three deep traps", "trajectories": n_traj},
+    )
+    return ds
+
+
+def png_size(path) -> tuple[int, int]:
+    """Width and height from the PNG signature and IHDR chunk (PNG specification, W3C)."""
+    head = path.read_bytes()[:24]
+    assert head[:8] == b"\x89PNG\r\n\x1a\n", "not a PNG"
+    assert head[12:16] == b"IHDR"
+    return struct.unpack(">II", head[16:24])
+
+
+def test_plot_all_writes_pngs(tmp_path):
+    nc = tmp_path / "run.nc"
+    make_dataset().to_netcdf(nc)
+    paths = plotting.plot_all(nc, tmp_path / "fig")
+    names = sorted(p.name for p in paths)
+    assert names == ["run_current_psd.png", "run_histogram.png", "run_psd.png",
+                     "run_rates.png", "run_transient.png"]
+    for p in paths:
+        assert p.exists() and p.stat().st_size > 20_000
+        w, h = png_size(p)
+        assert 600 <= w <= 3000 and 300 <= h <= 3000, (p.name, w, h)
+    assert not list((tmp_path / "fig").glob(".*tmp"))
+
+
+def test_tolerates_missing_variables(tmp_path):
+    ds = make_dataset()
+    ds = ds.drop_vars(["count_histogram", "count_histogram_exact", "current_psd",
+                       "current_psd_lna", "current_mean", "psd_lna", "event_rate",
+                       "count_continuum"])
+    ds = xr.concat([ds, ds], dim="sweep")  # a sweep file: drawn at its first point
+    nc = tmp_path / "bare.nc"
+    ds.to_netcdf(nc)
+    names = sorted(p.name for p in plotting.plot_all(nc, tmp_path))
+    assert names == ["bare_psd.png", "bare_transient.png"]
+
+
+def test_functions_take_and_return_ax():
+    from matplotlib.figure import Figure
+
+    ds = make_dataset()
+    fig = Figure()
+    axes = fig.subplots(2, 3)
+    assert plotting.plot_psd(ds, "electrons", ax=axes[0, 0]) is axes[0, 0]
+    assert plotting.plot_psd(ds, "current", ax=axes[0, 1]) is axes[0, 1]
+    assert plotting.plot_transient(ds, ax=axes[0, 2]) is axes[0, 2]
+    assert plotting.plot_histogram(ds, "trapped:deep", ax=axes[1, 0]) is axes[1, 0]
+    assert plotting.plot_event_rates(ds, ax=axes[1, 1]) is axes[1, 1]
+    # without a histogram: an explanation instead of a plot
+    ax = plotting.plot_histogram(ds.drop_vars("count_histogram"), "electrons", ax=axes[1, 2])
+    assert "no count_histogram" in ax.texts[0].get_text()
+    # the corner of the electrons' Lorentzian is marked (fitted here: no corner variable)
+    lines = [ln for ln in axes[0, 0].get_lines() if ln.get_label() == "corner frequency"]
+    assert len(lines) == 1
+    f_c = lines[0].get_xdata()[0]
+    assert f_c == pytest.approx(1 / (2 * np.pi * 1.5e-7), rel=0.1)
+    # a corner stored in the file is used as it is
+    ds["corner_frequency"] = ("species", [1e6, 2e6, 3e6], {"units": "Hz"})
+    ax = plotting.plot_psd(ds, "holes")
+    lines = [ln for ln in ax.get_lines() if ln.get_label() == "corner frequency"]
+    assert lines[0].get_xdata()[0] == 2e6
+
+
+def test_import_is_lazy():
+    # architecture.md: importing the module imports neither matplotlib nor xarray
+    code = ("import sys, grmc.plotting, grmc.export, grmc.spectra; "
+            "print('matplotlib' in sys.modules, 'xarray' in sys.modules)")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                         check=True)
+    assert out.stdout.split() == ["False", "False"]
