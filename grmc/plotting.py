@@ -43,7 +43,8 @@ if TYPE_CHECKING:  # pragma: no cover
     import xarray as xr
     from matplotlib.axes import Axes
 
-__all__ = ["plot_all", "plot_event_rates", "plot_histogram", "plot_psd", "plot_transient"]
+__all__ = ["plot_all", "plot_event_rates", "plot_histogram", "plot_psd", "plot_transient",
+           "plot_validity"]
 
 DPI = 150
 _PANEL = (6.4, 4.3)  # inches per panel
@@ -348,6 +349,75 @@ def plot_event_rates(ds: xr.Dataset, ax: Axes | None = None) -> Axes:
     return ax
 
 
+_DEVIATIONS = {
+    "mean": ("deviation_mean", "mean count vs continuum"),
+    "var": ("deviation_var", "variance vs linear noise"),
+    "tau": ("deviation_tau", "correlation time vs linear noise"),
+}
+
+
+def plot_validity(ds: xr.Dataset, quantity: str = "mean", ax: Axes | None = None) -> Axes:
+    """Where the continuum answer fails: |relative deviation| against the mean count.
+
+    One line per carrier species of a sweep file (``deviation_<quantity>`` with its standard
+    error as error bars, against ``stationary_mean``, log-log), the 10 % level drawn, and the
+    count where each line crosses it marked (:func:`grmc.sweep.crossing_count`).
+
+    Parameters
+    ----------
+    ds : xarray.Dataset  A sweep file (dims sweep, species)
+    quantity : "mean", "var" or "tau"
+    ax : matplotlib Axes, optional
+
+    Returns
+    -------
+    Axes
+    """
+    from .sweep import DEVIATION_THRESHOLD, crossing_count
+
+    name, what = _DEVIATIONS[quantity]
+    ax = _new_axes(ax)
+    if name not in ds:
+        return _note(ax, f"this file has no {name} (not a sweep file)")
+    drew = False
+    for k, sp in enumerate(ds["species"].values):
+        sp = str(sp)
+        if sp.startswith("trapped:"):
+            continue
+        x = np.asarray(ds["stationary_mean"].sel(species=sp).values, dtype=float)
+        y = np.abs(np.asarray(ds[name].sel(species=sp).values, dtype=float))
+        err = np.asarray(ds[name + "_stderr"].sel(species=sp).values, dtype=float)
+        ok = np.isfinite(x) & np.isfinite(y) & (x > 0)
+        if not np.any(ok):
+            continue
+        order = np.argsort(x[ok])
+        xs, ys, es = x[ok][order], y[ok][order], err[ok][order]
+        floor = 1e-6
+        ax.errorbar(xs, np.maximum(ys, floor), yerr=np.where(np.isfinite(es), es, 0),
+                    marker="o", ms=4, lw=1.2, capsize=2, color=f"C{k}", label=sp)
+        cross = crossing_count(xs, ys, DEVIATION_THRESHOLD)
+        if cross is not None:
+            ax.axvline(cross, color=f"C{k}", ls=":", lw=1)
+            ax.annotate(f"{sp}: {cross:.3g}", xy=(cross, DEVIATION_THRESHOLD),
+                        xytext=(4, 6 + 12 * k), textcoords="offset points", fontsize=8,
+                        color=f"C{k}")
+        drew = True
+    if not drew:
+        return _note(ax, "no finite deviations to draw")
+    ax.axhline(DEVIATION_THRESHOLD, color=_CORNER_COLOR, ls="--", lw=1,
+               label=f"{DEVIATION_THRESHOLD:.0%} deviation")
+    ax.set_xscale("log")
+    ax.set_yscale("log")
+    ax.set_xlabel("mean carrier count in the volume")
+    ax.set_ylabel("|relative deviation|")
+    head = _title(ds)
+    sub = f"where the continuum fails: {what}"
+    ax.set_title(f"{head}\n{sub}" if head else sub, fontsize=10)
+    ax.grid(True, which="both", alpha=0.3)
+    ax.legend(fontsize=8)
+    return ax
+
+
 # --------------------------------------------------------------------------------------------
 def _grid(n: int, size: tuple[float, float] = _PANEL) -> tuple[Any, list[Axes]]:
     from matplotlib.figure import Figure
@@ -382,6 +452,19 @@ def plot_all(path_nc: str | os.PathLike[str], outdir: str | os.PathLike[str] | N
     out.mkdir(parents=True, exist_ok=True)
     with xr.open_dataset(path_nc) as opened:
         ds = opened.load()
+    if "deviation_mean" in ds:  # a sweep file: the validity figure
+        stem = path_nc.stem
+        from matplotlib.figure import Figure
+
+        fig = Figure(figsize=(18.0, 5.0), layout="constrained")
+        axes = [fig.add_subplot(1, 3, i + 1) for i in range(3)]
+        for quantity, ax in zip(("mean", "var", "tau"), axes):
+            plot_validity(ds, quantity, ax=ax)
+        target = out / f"{stem}_validity.png"
+        tmp = target.with_name(f".{target.name}.tmp")
+        fig.savefig(tmp, dpi=DPI, format="png")
+        os.replace(tmp, target)
+        return [target]
     if "sweep" in ds.dims:
         n_sweep = ds.sizes["sweep"]
         ds = ds.isel(sweep=0)
