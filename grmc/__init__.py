@@ -20,7 +20,6 @@ from .model import Model, build_model  # noqa: E402
 from .scenario import Scenario, ScenarioError, load_scenario  # noqa: E402
 
 
-
 def run(scenario: Scenario, **options):
     """Run the ensemble of a scenario and return the output ``xarray.Dataset``.
 

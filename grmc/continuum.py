@@ -459,11 +459,10 @@ def _dark_guess(model: Model) -> tuple[np.ndarray, np.ndarray]:
         x[HOLES] = k_mass * math.exp(-log_ne)
         empty = _empty_of(model, x)
         if traps.size:
-            lo = x.copy()
-            hi = x.copy()
-            hi[traps] = cap[traps]
-            d0 = model.drift(lo)[traps]  # >= 0: filling at M = 0
-            d1 = -model.drift(hi)[traps]  # >= 0: emptying at M = T
+            full = x.copy()
+            full[traps] = cap[traps]
+            d0 = model.drift(x)[traps]  # >= 0: filling rate of empty levels
+            d1 = -model.drift(full)[traps]  # >= 0: emptying rate of full levels
             tot = d0 + d1
             frac = np.where(tot > 0, d0 / np.where(tot > 0, tot, 1.0), 0.5)
             efrac = np.where(tot > 0, d1 / np.where(tot > 0, tot, 1.0), 0.5)
@@ -472,8 +471,7 @@ def _dark_guess(model: Model) -> tuple[np.ndarray, np.ndarray]:
         return x, empty
 
     def excess(log_ne: float) -> float:
-        x, _ = state(log_ne)
-        return float(x[ELECTRONS] - x[HOLES] + x[2:].sum() - charge)
+        return model.charge_of(state(log_ne)[0]) - charge
 
     upper = abs(charge) + float(cap[traps].sum()) + math.sqrt(k_mass) + 1.0
     lo, hi = math.log(k_mass / upper), math.log(upper)
@@ -581,9 +579,12 @@ def steady_state(
 
     Notes
     -----
-    Convergence means each species' production and loss agree to 1e-11 relative and each
-    conservation law holds to 1e-13 of the magnitude of its terms; the drift is verified to be
-    below 1e-8 of the largest channel rate.
+    The equations are, for every species s that some channel changes,
+    ``log P_s(x) - log L_s(x) = 0`` with ``P_s = sum_{nu_rs > 0} nu_rs w_r`` and
+    ``L_s = sum_{nu_rs < 0} |nu_rs| w_r``, plus each conservation law relative to the size of
+    its terms.  Convergence means production and loss agree to 1e-11 and the laws hold to
+    1e-13 (accepted down to 1e-9 and 1e-11 where rounding stops the iteration); the drift is
+    then verified to be below 1e-8 of the largest channel rate.
     """
     x, empty = _solve(model, x0)
     return (x, empty) if with_empty else x

@@ -459,7 +459,8 @@ def stationary_law(Q: sp.csr_matrix, *, pin: int | None = None) -> tuple[np.ndar
     try:
         _, vecs = spla.eigs(Q.T.tocsc(), k=1, sigma=shift, which="LM")
     except (RuntimeError, spla.ArpackError) as exc:
-        raise RuntimeError(f"stationary law not found: direct solve and eigs failed ({exc})")
+        raise RuntimeError(
+            f"stationary law not found: direct solve and eigs failed ({exc})") from exc
     v = np.real(vecs[:, 0])
     v = v * np.sign(v.sum())
     v = np.clip(v, 0.0, None)

@@ -56,8 +56,8 @@ def exact_dataset(scenario: Scenario, *, command: str | None = None,
         t_eval, note = t + run.settle_s, "start state evolved through settle_s"
     res = exact.solve(model, freqs=freqs, times=t_eval, x0=x0, max_states=max_states)
     ss = continuum.steady_state(model)
-    lna = continuum.lna(model, x=ss)
-    smat = continuum.lna_psd(model, freqs, x=ss)
+    lna = continuum.lna(model)
+    smat = continuum.lna_psd(model, freqs)
     psd_lna = np.real(np.einsum("iif->if", smat))
     data = {
         "stationary_mean": (("species",), res.mean),
@@ -101,6 +101,7 @@ def exact_dataset(scenario: Scenario, *, command: str | None = None,
         ds, title=scenario.title, scenario_toml=scenario.text, command=command,
         method="exact master equation (finite state projection)",
         probability_outside=float(res.mass_outside), n_states=int(res.n_states),
-        max_pairs=int(res.max_pairs), transient_start=note, volume_cm3=float(scenario.volume.volume_cm3),
+        max_pairs=int(res.max_pairs), transient_start=note,
+        volume_cm3=float(scenario.volume.volume_cm3),
         **attrs,
     )

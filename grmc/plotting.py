@@ -269,6 +269,9 @@ def plot_histogram(ds: xr.Dataset, species: str, ax: Axes | None = None) -> Axes
     h = ds["count_histogram"].sel(species=species)
     n = np.asarray(h["count_value"].values, dtype=float)
     p = np.asarray(h.values, dtype=float)
+    if np.all(np.isnan(p)):
+        return _note(ax, f"{_species_label(species)}: no histogram stored (its count range "
+                         "is too wide to share an axis with the other species)")
     total = float(np.sum(p))
     if not total > 0:
         return _note(ax, f"count_histogram of {species} is empty")

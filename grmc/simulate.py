@@ -219,12 +219,12 @@ def run(
 
     # ------------------------------------------------------------ continuum and noise theory
     ss = continuum.steady_state(model0)
-    lna = continuum.lna(model0, x=ss)
+    lna = continuum.lna(model0)
     t = np.arange(n_samples) * (duration / n_samples)
     x_cont = continuum.transient(model0, mean_t[0], t).T
     freqs = spectra.periodogram_frequencies(n_samples, duration, segments=segments,
                                             oversample=OVERSAMPLE)
-    smat = continuum.lna_psd(model0, freqs, x=ss)
+    smat = continuum.lna_psd(model0, freqs)
     psd_lna = np.real(np.einsum("iif->if", smat))
 
     k_total = n * segments
@@ -392,15 +392,29 @@ def _combine(parts: list[_Acc]) -> _Acc:
 
 
 def _histogram(hist: dict, n_species: int):
-    """Common count axis and probabilities per species, or None when the span is too wide."""
+    """Common count axis and probabilities per species.
+
+    Species are taken in order (electrons, holes, traps) while the union of their observed
+    ranges stays within :data:`MAX_HISTOGRAM_SPAN` values; a species whose range would make
+    the axis too wide (e.g. 1e5 majority holes beside 10 electrons) gets a NaN row.
+    """
     if not hist:
         return None
-    lo = min(h[0] for h in hist.values())
-    hi = max(h[0] + len(h[1]) for h in hist.values())
-    if hi - lo > MAX_HISTOGRAM_SPAN:
+    lo = hi = None
+    kept = []
+    for s in range(n_species):
+        start, counts = hist[s]
+        new_lo = start if lo is None else min(lo, start)
+        new_hi = start + len(counts) if hi is None else max(hi, start + len(counts))
+        if new_hi - new_lo <= MAX_HISTOGRAM_SPAN:
+            lo, hi = new_lo, new_hi
+            kept.append(s)
+    if not kept:
         return None
-    probs = np.zeros((n_species, hi - lo))
-    for s, (start, counts) in hist.items():
+    probs = np.full((n_species, hi - lo), np.nan)
+    for s in kept:
+        start, counts = hist[s]
+        probs[s] = 0.0
         probs[s, start - lo:start - lo + len(counts)] = counts / counts.sum()
     return np.arange(lo, hi, dtype=np.int64), probs
 

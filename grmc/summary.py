@@ -55,7 +55,7 @@ def summarize(scenario: Scenario) -> dict:
             rounding(f"trap level '{trap.label}'", mean, got)
 
     ss = continuum.steady_state(model)
-    lna = continuum.lna(model, x=ss)
+    lna = continuum.lna(model)
     var = np.diag(lna.covariance)
     x0 = model.nearest_neutral_state(ss)
     rate = float(model.propensities(x0).sum())

@@ -121,14 +121,14 @@ def _point_seed(seed: int, index: int) -> int:
     return int(ss.generate_state(1, np.uint32)[0])
 
 
-def _lna_tau(model, ss) -> tuple[np.ndarray, np.ndarray, float]:
+def _lna_tau(model) -> tuple[np.ndarray, np.ndarray, float]:
     from . import continuum
 
-    lna = continuum.lna(model, x=ss)
+    lna = continuum.lna(model)
     var = np.diag(lna.covariance).copy()
     times = np.asarray(lna.relaxation_times, dtype=float)
     f0 = 1e-4 / (2 * math.pi * times.max()) if times.size else 1.0
-    s0 = np.real(np.einsum("iif->if", continuum.lna_psd(model, np.array([f0]), x=ss)))[:, 0]
+    s0 = np.real(np.einsum("iif->if", continuum.lna_psd(model, np.array([f0]))))[:, 0]
     with np.errstate(divide="ignore", invalid="ignore"):
         tau = np.where(var > 0, s0 / (4 * var), np.nan)
     return var, tau, f0
@@ -149,7 +149,7 @@ def evaluate_point(scenario: Scenario, index: int, *, exact_limit: int = EXACT_S
 
     model = build_model(scenario)
     ss = continuum.steady_state(model)
-    var_lna, tau_lna, f0 = _lna_tau(model, ss)
+    var_lna, tau_lna, f0 = _lna_tau(model)
     out: dict[str, Any] = {"index": index, "species": list(model.species)}
     try:
         res = exact.solve(model, freqs=np.array([f0]), max_states=exact_limit)

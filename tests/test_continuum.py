@@ -88,23 +88,23 @@ FIVE_LEVELS = tuple(
 )
 
 SWEEP = {
-    "nearly empty intrinsic (n_i V = 1e-3)": dict(V=1e-13),
-    "intrinsic, large": dict(V=1e-9),
-    "n-type 1e19": dict(ND=1e19),
-    "p-type 1e19": dict(NA=1e19),
-    "five levels, intrinsic": dict(traps=FIVE_LEVELS),
-    "five levels, n-type 1e19": dict(ND=1e19, traps=FIVE_LEVELS),
-    "five levels, p-type 1e19": dict(NA=1e19, traps=FIVE_LEVELS),
-    "five levels, nearly empty": dict(V=1e-13, traps=FIVE_LEVELS),
-    "full deep level, n-type 1e19": dict(ND=1e19, traps=((100, None, -0.4, "acceptor",
-                                                         C_CAPTURE, C_CAPTURE),)),
-    "Auger only": dict(B=0.0, Cn=SI_CN, Cp=SI_CP, ND=1e18),
-    "traps only": dict(B=0.0, NA=1e17, traps=((300, None, 0.0, "acceptor", C_CAPTURE,
-                                               C_CAPTURE),)),
-    "GaAs p-type, tiny minority": dict(ni=GAAS_NI, B=GAAS_B, NA=1e17),
-    "with an empty level (T = 0)": dict(NA=1e17, traps=(
+    "nearly empty intrinsic (n_i V = 1e-3)": {"V": 1e-13},
+    "intrinsic, large": {"V": 1e-9},
+    "n-type 1e19": {"ND": 1e19},
+    "p-type 1e19": {"NA": 1e19},
+    "five levels, intrinsic": {"traps": FIVE_LEVELS},
+    "five levels, n-type 1e19": {"ND": 1e19, "traps": FIVE_LEVELS},
+    "five levels, p-type 1e19": {"NA": 1e19, "traps": FIVE_LEVELS},
+    "five levels, nearly empty": {"V": 1e-13, "traps": FIVE_LEVELS},
+    "full deep level, n-type 1e19": {
+        "ND": 1e19, "traps": ((100, None, -0.4, "acceptor", C_CAPTURE, C_CAPTURE),)},
+    "Auger only": {"B": 0.0, "Cn": SI_CN, "Cp": SI_CP, "ND": 1e18},
+    "traps only": {
+        "B": 0.0, "NA": 1e17, "traps": ((300, None, 0.0, "acceptor", C_CAPTURE, C_CAPTURE),)},
+    "GaAs p-type, tiny minority": {"ni": GAAS_NI, "B": GAAS_B, "NA": 1e17},
+    "with an empty level (T = 0)": {"NA": 1e17, "traps": (
         (0, None, 0.0, "acceptor", C_CAPTURE, C_CAPTURE),
-        (30, None, 0.2, "donor", C_CAPTURE, 0.1 * C_CAPTURE))),
+        (30, None, 0.2, "donor", C_CAPTURE, 0.1 * C_CAPTURE))},
 }
 
 
@@ -158,8 +158,9 @@ def test_steady_state_agrees_with_long_transient():
     """Independent path: the rate equations integrated for 60 slowest relaxation times reach
     the steady state (residual e^-60 ~ 1e-26; the integrator runs at rtol 1e-9, so 1e-6 is
     a safe bound on the accumulated error)."""
-    for kw in (dict(G=1e21, traps=FIVE_LEVELS), dict(G=1e22, NA=1e17, V=1e-15, traps=(
-            (None, 3e16, 0.0, "acceptor", C_CAPTURE, C_CAPTURE),))):
+    demo_like = {"G": 1e22, "NA": 1e17, "V": 1e-15,  # as the bundled p-type demo box
+                 "traps": ((None, 3e16, 0.0, "acceptor", C_CAPTURE, C_CAPTURE),)}
+    for kw in ({"G": 1e21, "traps": FIVE_LEVELS}, demo_like):
         model = make_model(**kw)
         xss = cont.steady_state(model)
         x0 = cont.equilibrium(model)

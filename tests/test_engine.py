@@ -406,7 +406,9 @@ def test_birth_death_stationary_law():
     45, 2145, 1966), which is Poisson with mean lambda / A to within ~<n>/A = 5e-5 (van
     Kampen, Stochastic Processes in Physics and Chemistry, ch. VI).  Time-weighted mean and
     variance (the latter about the exact mean, from integ2) within Z standard errors;
-    16 replicates of ~4000 relaxation times each, seed 31."""
+    16 replicates of ~4000 relaxation times each, seed 31.  The replicates are the batches of
+    a batch-means estimate (independent by construction, so no batch length enters): standard
+    error = spread of the 16 per-trajectory values / 4."""
     text = """
 title = "birth-death"
 [material]

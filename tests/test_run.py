@@ -24,7 +24,7 @@ def _scenario(text: str) -> grmc.Scenario:
     return grmc.load_scenario(text=text)
 
 
-def birth_death_text(trajectories=64, duration=2.0e-4, seed=3):
+def birth_death_text(trajectories=64, duration=5.0e-3, seed=3):
     # Electrons in a heavily p-type box with radiative recombination only: the loss rate
     # B N_h N_e / V is first order in N_e because N_h = A + N_e ~ A = 1e5 >> <N_e> ~ 10.
     # Thermal + optical generation are constant: a linear birth-death process.
@@ -33,7 +33,7 @@ title = "birth-death"
 [material]
 temperature_K = 300.0
 intrinsic_density_cm3 = 1.0e6
-radiative_cm3_s = 1.0e-10
+radiative_cm3_s = 1.0e-16
 acceptors_cm3 = 1.0e20
 [volume]
 volume_cm3 = 1.0e-15
@@ -43,7 +43,7 @@ generation_cm3_s = 1.0e20
 trajectories = {trajectories}
 duration_s = {duration}
 samples = 512
-settle_s = 1.0e-5
+settle_s = 5.0e-4
 seed = {seed}
 """
 
@@ -57,8 +57,8 @@ def test_birth_death_is_poisson():
     err = float(ds["stationary_mean_stderr"].sel(species="electrons"))
     var = float(ds["stationary_var"].sel(species="electrons"))
     var_err = float(ds["stationary_var_stderr"].sel(species="electrons"))
-    g = 1.0e20 * 1.0e-15 + 1.0e-10 * 1.0e12 * 1.0e-15  # G V + B n_i^2 V [1/s]
-    k = 1.0e-10 * (1.0e5 + mean) / 1.0e-15  # B N_h / V [1/s]
+    g = 1.0e20 * 1.0e-15 + 1.0e-16 * 1.0e12 * 1.0e-15  # G V + B n_i^2 V [1/s]
+    k = 1.0e-16 * (1.0e5 + mean) / 1.0e-15  # B N_h / V [1/s]; mean g/k ~ 10
     assert abs(mean - g / k) < Z * err  # birth-death mean g/k
     assert abs(var - mean) < Z * math.hypot(var_err, err)  # Poisson: var = mean
     # occupation probabilities against the Poisson pmf, within the binomial standard error
@@ -138,17 +138,45 @@ seed = {seed}
 """
 
 
+DARK = """
+title = "dark box, every reverse pair active"
+[material]
+temperature_K = 300.0
+intrinsic_density_cm3 = 1.0e15
+radiative_cm3_s = 1.0e-10
+auger_electron_cm6_s = 1.0e-26
+auger_hole_cm6_s = 1.0e-26
+donors_cm3 = 2.0e14
+[volume]
+volume_cm3 = 1.0e-14
+[[traps]]
+label = "deep"
+count = 4
+energy_eV = 0.02
+kind = "donor"
+electron_capture_cm3_s = 1.0e-9
+hole_capture_cm3_s = 2.0e-9
+[run]
+trajectories = 64
+duration_s = 1.0e-4
+samples = 256
+settle_s = 1.0e-5
+seed = 8
+"""
+
+
 def test_detailed_balance_in_the_dark():
     """In equilibrium each channel and its reverse fire equally often (detailed balance;
     physics.md).  The difference of two event counts of a reverse pair is bounded by the
     state's excursions, so the Poisson error sqrt(f + r) of independent counts is a
     conservative standard error for it."""
-    ds = grmc.run(_scenario(trap_text()), workers=2, progress=False)
-    model = grmc.build_model(_scenario(trap_text()))
+    scen = _scenario(DARK)
+    ds = grmc.run(scen, workers=2, progress=False)
+    model = grmc.build_model(scen)
     ev = ds["events"].values
     assert model.reverse_pairs, "the model must have reverse pairs"
     for f, r in model.reverse_pairs:
-        assert ev[f] + ev[r] > 1000
+        assert ev[f] + ev[r] > 500, model.channel_names[f]
         assert abs(ev[f] - ev[r]) < Z * math.sqrt(ev[f] + ev[r]), model.channel_names[f]
 
 
@@ -236,6 +264,19 @@ def test_output_file_round_trip_and_cf(tmp_path):
     for name in back.variables:
         assert "units" in back[name].attrs and "long_name" in back[name].attrs, name
     assert back.attrs["Conventions"] == "CF-1.11" and "scenario_toml" in back.attrs
-    from tests.cf_check import cf_errors
+    assert _cf_errors(path) == []
 
-    assert cf_errors(path) == []
+
+def _cf_errors(path) -> list[str]:
+    """High-priority (error) results of the IOOS compliance checker's cf:1.11 suite."""
+    import json
+
+    from compliance_checker.runner import CheckSuite, ComplianceChecker
+
+    CheckSuite.load_all_available_checkers()
+    out = path.with_suffix(".json")
+    ComplianceChecker.run_checker(str(path), ["cf:1.11"], 0, "normal",
+                                  output_filename=str(out), output_format="json")
+    report = json.loads(out.read_text())["cf:1.11"]
+    return [f"{r['name']}: {r['msgs']}" for r in report.get("high_priorities", [])
+            if r["value"][0] < r["value"][1]]

@@ -6,6 +6,9 @@ records the window ``[0, duration_s]``: states at the sample times, exact time a
 fine bins, exact integrals of x and x^2, event counts per channel and the final state.
 :func:`simulate` is the public wrapper (validates, allocates, returns a
 :class:`TrajectoryResult`); :func:`kernel_arrays` pulls the arrays out of a ``Model``.
+The compiled, allocation-free kernel is :func:`run_prepared`: it reads the model as
+:class:`KernelTables` (:func:`build_tables`, once per model) and works in arrays from
+:func:`allocate_work`; it never allocates and releases the GIL.
 
 Algorithm (the oracle in ``grmc.engine.oracle`` repeats every step in the same order)
 -------------------------------------------------------------------------------------

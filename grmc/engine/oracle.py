@@ -37,7 +37,7 @@ class _Model:
         self.n_channels = v["stoich"].shape[0]
         self.n_species = v["x0"].shape[0]
         self.coefficient = [float(c) for c in v["coefficient"]]
-        self.factors = []  # per channel: list of (species, sign, offset) of used factors
+        self.factors = []  # per channel: three (species, sign, offset), None where unused
         for r in range(self.n_channels):
             fac = []
             for f in range(3):
