@@ -10,6 +10,7 @@ Dataset with the continuum and linear-noise answers beside the Monte Carlo ones.
 from __future__ import annotations
 
 import dataclasses
+import math
 import threading
 import time
 from dataclasses import dataclass, field
@@ -35,6 +36,8 @@ OVERSAMPLE = 8
 N_BATCHES = 16
 #: Largest span of count values kept in the stationary histogram.
 MAX_HISTOGRAM_SPAN = 4096
+#: Events per engine call when a trajectory is cut into time slices (about a second).
+SLICE_EVENTS = 2.0e7
 #: Stream purposes spawned from (seed, trajectory): 0 the event engine, 1 dopant draws.
 PURPOSE_ENGINE, PURPOSE_DOPANTS = 0, 1
 
@@ -166,27 +169,20 @@ def run(
     readout = scenario.readout
     a_e, a_h = spectra.current_scale(readout) if readout is not None else (0.0, 0.0)
 
-    def work(chunk: range, cancel: threading.Event) -> _Acc:
+    plan = _slice_plan(base, rs)
+
+    def work(chunk: range, cancel: threading.Event, tick) -> _Acc:
         acc = _Acc()
         for i in chunk:
-            if cancel.is_set():
-                raise Cancelled
             if poisson:
                 rng = np.random.default_rng(np.random.SeedSequence(rs.seed,
                                                                    spawn_key=(i, PURPOSE_DOPANTS)))
                 prep = cache.get(draw_counts(scenario, rng))
             else:
                 prep = base
-            res = simulate_trajectory(
-                *prep.arrays,
-                x0=prep.x0,
-                rng_state=stream_state(rs.seed, i, purpose=PURPOSE_ENGINE),
-                settle_s=rs.settle_s,
-                excess=excess,
-                duration_s=duration,
-                n_samples=n_samples,
-                oversample=OVERSAMPLE,
-            )
+            res = _simulate_sliced(simulate_trajectory, prep,
+                                   stream_state(rs.seed, i, purpose=PURPOSE_ENGINE), rs,
+                                   excess, plan, cancel, tick)
             _reduce_one(acc, i, res, prep, ref, dt_fine, segments, a_e, a_h, len(names),
                         readout is not None)
         acc.group_psd = [(acc.n, acc.psd.copy())]
@@ -195,7 +191,8 @@ def run(
         return acc
 
     t0 = time.perf_counter()
-    parts = map_chunks(work, chunk_bounds(n_traj), workers=workers, progress=progress)
+    parts = map_chunks(work, chunk_bounds(n_traj), workers=workers, progress=progress,
+                       units_per_item=plan.settle_slices + plan.window_slices)
     wall = time.perf_counter() - t0
     acc = _combine(parts)
 
@@ -319,6 +316,75 @@ def run(
     for tr, total in zip(scenario.traps, counts0.traps):
         attrs[f"trap_count_{tr.label}"] = int(total)
     return finish(ds, title=scenario.title, scenario_toml=scenario.text, command=command, **attrs)
+
+
+@dataclass(frozen=True)
+class _SlicePlan:
+    """How one trajectory is cut into consecutive engine calls."""
+
+    settle_slices: int
+    window_slices: int
+
+
+def _slice_plan(base: Prepared, rs) -> _SlicePlan:
+    """Cut long trajectories into time slices of about :data:`SLICE_EVENTS` events.
+
+    The event loop is memoryless, so continuing a trajectory from the state and random
+    stream where the previous slice stopped is exact.  Slices let Ctrl-C stop a run within
+    about a second and let the progress bar move during a single long trajectory.  The plan
+    depends on the scenario only (the expected event rate at the start state), never on the
+    number of workers, so the data stay identical whatever ``workers`` is.  Window slices
+    divide ``samples`` evenly.
+    """
+    rate = float(base.model.propensities(base.x0).sum())
+    settle = max(1, math.ceil(rate * rs.settle_s / SLICE_EVENTS)) if rs.settle_s > 0 else 0
+    want = max(1, math.ceil(rate * rs.duration_s / SLICE_EVENTS))
+    divisors = [d for d in range(1, rs.samples + 1) if rs.samples % d == 0]
+    window = next((d for d in divisors if d >= want), rs.samples)
+    return _SlicePlan(settle, window)
+
+
+class _Joined:
+    """A trajectory assembled from time slices (the fields the reductions read)."""
+
+    def __init__(self, parts):
+        self.samples = np.concatenate([p.samples for p in parts])
+        self.bins = np.concatenate([p.bins for p in parts])
+        self.integ = np.sum([p.integ for p in parts], axis=0)
+        self.integ2 = np.sum([p.integ2 for p in parts], axis=0)
+        self.events = np.sum([p.events for p in parts], axis=0)
+        self.final = parts[-1].final
+
+
+def _simulate_sliced(simulate_trajectory, prep: Prepared, rng_state: np.ndarray, rs, excess,
+                     plan: _SlicePlan, cancel: threading.Event, tick):
+    """One trajectory as consecutive engine calls (see :func:`_slice_plan`)."""
+    x = prep.x0
+    zero = np.zeros_like(excess)
+    # a short settling runs inside the first window call (the kernel's own settle phase);
+    # a long one in slices of its own, whose records are discarded
+    settle_first = rs.settle_s if plan.settle_slices == 1 else 0.0
+    for _ in range(plan.settle_slices if plan.settle_slices > 1 else 0):
+        if cancel.is_set():
+            raise Cancelled
+        x = simulate_trajectory(*prep.arrays, x0=x, rng_state=rng_state, settle_s=0.0,
+                                excess=zero, duration_s=rs.settle_s / plan.settle_slices,
+                                n_samples=1, oversample=1).final
+        tick(1)
+    parts = []
+    n = rs.samples // plan.window_slices
+    for k in range(plan.window_slices):
+        if cancel.is_set():
+            raise Cancelled
+        res = simulate_trajectory(*prep.arrays, x0=x, rng_state=rng_state,
+                                  settle_s=settle_first if k == 0 else 0.0,
+                                  excess=excess if k == 0 else zero,
+                                  duration_s=rs.duration_s / plan.window_slices, n_samples=n,
+                                  oversample=OVERSAMPLE)
+        x = res.final
+        parts.append(res)
+        tick(1 + (k == 0 and plan.settle_slices == 1))
+    return parts[0] if len(parts) == 1 else _Joined(parts)
 
 
 def _reduce_one(acc: _Acc, i: int, res, prep: Prepared, ref: np.ndarray, dt_fine: float,

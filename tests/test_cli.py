@@ -7,6 +7,7 @@ import subprocess
 import sys
 from pathlib import Path
 
+import numpy as np
 import pytest
 
 from grmc.cli import main
@@ -107,3 +108,80 @@ def test_inspect_json_has_the_contract_keys(tmp_path, capsys):
     assert info["species"] == ["electrons", "holes", "trapped:deep"]
     assert info["counts"]["acceptors"] == 100 and info["counts"]["T_deep"] == 20
     assert set(info["steady_continuum"]) == set(info["species"])
+
+
+SMALL = """
+title = "small exact box"
+[material]
+temperature_K = 300.0
+intrinsic_density_cm3 = 1.0e10
+radiative_cm3_s = 1.0e-10
+donors_cm3 = 1.0e10
+[volume]
+volume_cm3 = 2.0e-10
+[[traps]]
+label = "t"
+count = 2
+energy_eV = 0.0
+electron_capture_cm3_s = 1.0e-16
+hole_capture_cm3_s = 1.0e-16
+[run]
+trajectories = 8
+duration_s = 20.0
+samples = 128
+"""
+
+
+def test_exact_command_writes_the_contract(tmp_path, capsys):
+    """`grmc exact` writes the same names as `run` where they mean the same thing and reports
+    the probability outside its truncation (the exact values themselves are checked against
+    published results in test_exact.py)."""
+    from grmc.dataset import load
+
+    path = _write(tmp_path, SMALL)
+    out = tmp_path / "exact.nc"
+    assert main(["exact", str(path), "-o", str(out)]) == 0
+    assert "probability outside" in capsys.readouterr().out
+    ds = load(out)
+    for name in ("stationary_mean", "stationary_var", "steady_continuum", "var_lna", "psd",
+                 "psd_lna"):
+        assert name in ds, name
+    assert ds["psd"].dims == ("species", "frequency")
+    assert float(ds["probability_outside"]) < 1e-9
+    assert "probability_outside" in ds.attrs
+    assert main(["plot", str(out), "-o", str(tmp_path / "png")]) == 0
+    assert list((tmp_path / "png").glob("*.png"))
+
+
+def test_run_plot_export_round(tmp_path, capsys):
+    from grmc.export import read_noise_table
+
+    path = _write(tmp_path, GOOD.replace("[run]", "[readout]\nbias_V = 1.0\nlength_cm = 1e-4\n"
+                                         "electron_mobility_cm2_Vs = 1000.0\n"
+                                         "hole_mobility_cm2_Vs = 400.0\n[run]"))
+    out = tmp_path / "r.nc"
+    assert main(["run", str(path), "-o", str(out), "--workers", "2"]) == 0
+    printed = capsys.readouterr().out
+    assert "MC mean" in printed and "continuum" in printed and f"wrote {out}" in printed
+    csv = tmp_path / "i.csv"
+    assert main(["export", str(out), "--format", "csv", "-o", str(csv)]) == 0
+    assert "A^2/Hz" in csv.read_text() or "A2" in csv.read_text()
+    va = tmp_path / "i.va"
+    assert main(["export", str(out), "--format", "verilog-a", "-o", str(va)]) == 0
+    f, s = read_noise_table(va)
+    assert np.all(np.diff(f) > 0) and np.all(s > 0)
+    assert main(["export", str(out), "--format", "csv", "--quantity", "protons",
+                 "-o", str(csv)]) == 2
+    assert "protons" in capsys.readouterr().err
+    assert main(["export", str(tmp_path / "none.nc"), "--format", "csv", "-o", str(csv)]) == 2
+
+
+def test_demo_end_to_end(tmp_path, capsys):
+    """`grmc demo` runs the bundled scenario, plots and exports, and says where they are."""
+    from grmc.demo import run_demo
+
+    got = run_demo(tmp_path, workers=2)
+    printed = capsys.readouterr().out
+    assert got["netcdf"].is_file() and len(got["plots"]) >= 4 and len(got["exports"]) >= 2
+    for p in [got["netcdf"], *got["plots"], *got["exports"]]:
+        assert str(p) in printed

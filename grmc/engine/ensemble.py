@@ -65,18 +65,22 @@ def chunk_bounds(n_items: int, *, max_chunks: int = 64, min_size: int = 1) -> li
 
 
 def map_chunks(
-    work: Callable[[range, threading.Event], T],
+    work: Callable[[range, threading.Event, Callable[[int], None]], T],
     chunks: Sequence[range],
     *,
     workers: int | None = None,
     progress: bool | None = None,
     description: str = "trajectories",
+    units_per_item: int = 1,
 ) -> list[T]:
-    """Run ``work(chunk, cancel_event)`` for every chunk; results in chunk order.
+    """Run ``work(chunk, cancel_event, tick)`` for every chunk; results in chunk order.
 
     Parameters
     ----------
-    work : callable  Reduces one chunk; should check ``cancel_event.is_set()`` between items
+    work : callable  Reduces one chunk; should check ``cancel_event.is_set()`` between pieces
+        of work (raising :class:`Cancelled`) and call ``tick(n)`` after ``n`` units of work
+    units_per_item : int  Progress units per item of a chunk (e.g. time slices per
+        trajectory); the bar counts units
     chunks : sequence of range
     workers : int, optional  Threads (default: all cores)
     progress : bool, optional  True: always show a bar; False: never; None: only on a terminal
@@ -94,30 +98,35 @@ def map_chunks(
     from tqdm.auto import tqdm
 
     workers = default_workers() if workers is None else max(1, int(workers))
-    total = sum(len(c) for c in chunks)
+    total = sum(len(c) for c in chunks) * units_per_item
+    if units_per_item > 1:
+        description = f"{description} ({units_per_item} time slices each)"
     cancel = threading.Event()
+    lock = threading.Lock()
     disable = None if progress is None else (not progress)
     results: dict[int, T] = {}
     bar = tqdm(total=total, desc=description, unit="", disable=disable, leave=False,
                mininterval=0.5, delay=2.0)
+
+    def tick(units: int) -> None:
+        with lock:
+            bar.update(units)
+
     try:
         if workers == 1 or len(chunks) == 1:
             for i, chunk in enumerate(chunks):
-                results[i] = work(chunk, cancel)
-                bar.update(len(chunk))
+                results[i] = work(chunk, cancel, tick)
         else:
             with ThreadPoolExecutor(max_workers=workers) as pool:
                 futures: dict[Future, int] = {
-                    pool.submit(work, chunk, cancel): i for i, chunk in enumerate(chunks)
+                    pool.submit(work, chunk, cancel, tick): i for i, chunk in enumerate(chunks)
                 }
                 pending = set(futures)
                 try:
                     while pending:
                         done, pending = wait(pending, timeout=0.2, return_when=FIRST_COMPLETED)
                         for fut in done:
-                            i = futures[fut]
-                            results[i] = fut.result()
-                            bar.update(len(chunks[i]))
+                            results[futures[fut]] = fut.result()
                 except BaseException:
                     cancel.set()
                     for fut in pending:
