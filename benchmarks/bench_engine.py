@@ -41,7 +41,7 @@ import numpy as np
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
-import grmc
+import grmc  # noqa: E402
 
 SCENARIO = """
 title = "engine benchmark: p-type 100 nm box, 40 mid-gap traps, Auger, radiative, strong light"

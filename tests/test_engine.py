@@ -195,7 +195,8 @@ def test_kernel_equals_oracle_with_three_trap_levels():
     """Kernel = oracle on a larger network: three trap levels (acceptor- and donor-like),
     donors, both Auger processes and light: 5 species, 19 channels (table padding, packing
     and the sorting search beyond the first four places)."""
-    text = SMALL_TOML.replace('acceptors_cm3 = 1.0e17', 'acceptors_cm3 = 1.0e17\ndonors_cm3 = 2.0e16')
+    text = SMALL_TOML.replace('acceptors_cm3 = 1.0e17',
+                              'acceptors_cm3 = 1.0e17\ndonors_cm3 = 2.0e16')
     for label, count, energy, kind in (("b", 3, -0.2, "donor"), ("c", 2, 0.3, "acceptor")):
         text = text.replace("[light]", f"""[[traps]]
 label = "{label}"
@@ -275,7 +276,8 @@ def test_recording_against_an_independent_reconstruction(events_per_bin):
     count = np.searchsorted(times, t_k, side="right")  # events at times <= t_k
     assert np.array_equal(res.samples, x0 + count[:, None])
     edges = duration * (np.arange(n_bins + 1) / n_bins)
-    # integral of N(t) = #events <= t over [e_j, e_j+1] = sum over events of (e_j+1 - max(t_i, e_j))+
+    # integral of N(t) = #events <= t over [e_j, e_j+1]
+    #   = sum over events of (e_j+1 - max(t_i, e_j))+
     over = np.clip(edges[1:, None] - np.maximum(times[None, :], edges[:-1, None]), 0.0, None)
     width = np.diff(edges)
     avg = over.sum(axis=1) / width

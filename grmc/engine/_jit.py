@@ -142,7 +142,7 @@ def _configure_cache() -> tuple[bool, str | None]:
 CACHE_ENABLED, CACHE_DIR = _configure_cache()
 
 # numba is imported only now, after NUMBA_CACHE_DIR is settled (its config reads it).
-import numba
+import numba  # noqa: E402
 
 #: The decorator of every compiled engine function.
 jit = numba.njit(nogil=True, cache=CACHE_ENABLED, fastmath=False, error_model="numpy")
