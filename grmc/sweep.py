@@ -166,8 +166,11 @@ def evaluate_point(scenario: Scenario, index: int, *, exact_limit: int = EXACT_S
         seed = _point_seed(scenario.run.seed, index)
         ds = run(scenario, seed=seed, workers=1, progress=False)
         var = ds["stationary_var"].values
-        plateau = ds["plateau"].values
-        plateau_err = ds["plateau_stderr"].values
+        # S(0): the sum of the fitted Lorentzian components' plateaus (NaN if unresolved)
+        comps = ds["plateau"].values
+        resolved = np.isfinite(comps).any(axis=1)
+        plateau = np.where(resolved, np.nansum(comps, axis=1), np.nan)
+        plateau_err = np.sqrt(np.nansum(ds["plateau_stderr"].values ** 2, axis=1))
         with np.errstate(divide="ignore", invalid="ignore"):
             tau = plateau / (4 * var)
             tau_err = np.abs(tau) * np.hypot(plateau_err / plateau,

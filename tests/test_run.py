@@ -347,3 +347,19 @@ def test_interrupt_leaves_no_file(tmp_path):
     assert "interrupted" in err and "Traceback" not in err
     assert not out.exists() and not list(tmp_path.glob("*.part")) and \
         not list(tmp_path.glob(".*"))
+
+
+def test_exact_agreement_second_scenario_dark_auger():
+    """A second small scenario (dark, radiative + both Auger channels + a donor-like trap
+    level): Monte Carlo stationary means and variances equal the exact master-equation values
+    (Munsky & Khammash 2006) within the run's standard errors."""
+    from grmc.exact import solve
+
+    scen = _scenario(DARK)
+    ds = grmc.run(scen, workers=2, progress=False)
+    ex = solve(grmc.build_model(scen))
+    for i, s in enumerate(ds["species"].values):
+        m, e = float(ds["stationary_mean"][i]), float(ds["stationary_mean_stderr"][i])
+        v, ve = float(ds["stationary_var"][i]), float(ds["stationary_var_stderr"][i])
+        assert abs(m - ex.mean[i]) < Z * e, s
+        assert abs(v - ex.var[i]) < Z * ve, s

@@ -81,3 +81,20 @@ def test_volume_sweep_on_local_cluster_resume_and_deviation(tmp_path):
     dev = np.abs(holes["deviation_mean"].values)
     # lambda = 0.04, 4, 400: the Bessel ratio gives |deviation| ~ 0.81, ~0.12, ~1/(4 sqrt(400))
     assert np.all(np.diff(dev) < 0) and dev[-1] < 0.02 and dev[0] > 0.5
+
+
+def test_point_falls_back_to_monte_carlo():
+    """Where the exact state space is too large a sweep point runs the Monte Carlo ensemble
+    instead, and records which; its mean agrees with the Bessel answer within its standard
+    error (Darvey, Ninham & Staff 1966)."""
+    from grmc.sweep import evaluate_point, point_scenario
+
+    scen = point_scenario(grmc.load_scenario(text=PAIR.replace("trajectories = 8",
+                                                               "trajectories = 32")),
+                          {"volume.volume_cm3": 2.0e-10})
+    res = evaluate_point(scen, 0, exact_limit=5)
+    assert res["method"] == "monte carlo"
+    h = res["species"].index("holes")
+    mean_h, _ = pair_reaction_exact(4.0, 0)
+    assert abs(res["mean"][h] - mean_h) < 4 * res["mean_err"][h]
+    assert res["mean_err"][h] > 0 and np.isfinite(res["tau"][h])
