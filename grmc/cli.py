@@ -151,9 +151,14 @@ def cmd_sweep(args) -> int:
     except ValueError as exc:
         raise UsageError(f"--vary: {exc}") from None
     out = Path(args.output) if args.output else _default_output(args.scenario, "_sweep")
-    path = run_sweep(scenario, varies, out, scheduler=args.scheduler, resume=args.resume,
-                     workers=args.workers, command=args.command_line)
-    print(f"wrote {path}")
+    try:
+        run_sweep(scenario, varies, out, scheduler=args.scheduler, resume=args.resume,
+                  workers=args.workers, command=args.command_line)
+    except KeyboardInterrupt:
+        print(f"grmc: interrupted; finished points are kept in {out}.parts, "
+              "run the same command with --resume to continue", file=sys.stderr)
+        return EXIT_INTERRUPTED
+    print(f"wrote {out}")
     return EXIT_OK
 
 

@@ -225,7 +225,7 @@ def run_sweep(scenario: Scenario, varies: list[Vary], out: str | Path, *,
 
     Returns
     -------
-    Path  The sweep file (not written while points are missing).
+    Path or None  The sweep file; None while points are missing (``max_points``).
 
     Raises
     ------
@@ -284,7 +284,7 @@ def run_sweep(scenario: Scenario, varies: list[Vary], out: str | Path, *,
             if cluster is not None:
                 cluster.close()
     if len(done) < len(points):
-        return out
+        return None
     ds = assemble(scenario, varies, [done[i] for i in range(len(points))], command=command)
     save(ds, out)
     for f in parts.glob("*"):
