@@ -13,14 +13,13 @@ standard names cover no semiconductor quantities, so no ``standard_name`` is set
 from __future__ import annotations
 
 import datetime as _dt
-import os
 import sys
-import tempfile
 from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING
 
 from . import __version__
+from .atomic import atomic_target
 
 if TYPE_CHECKING:  # pragma: no cover
     import xarray as xr
@@ -234,18 +233,8 @@ def save(ds: xr.Dataset, path: str | Path, *, required: tuple[str, ...] = ()) ->
     """
     validate(ds, required=required)
     path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part", dir=path.parent)
-    os.close(fd)
-    try:
+    with atomic_target(path) as tmp:
         ds.to_netcdf(tmp, format="NETCDF4", engine="netcdf4")
-        os.replace(tmp, path)
-    except BaseException:
-        try:
-            os.unlink(tmp)
-        except FileNotFoundError:
-            pass
-        raise
     return path
 
 

@@ -25,7 +25,6 @@ from __future__ import annotations
 import math
 import os
 import re
-import tempfile
 import tomllib
 from dataclasses import dataclass
 from pathlib import Path
@@ -34,6 +33,7 @@ from typing import TYPE_CHECKING, Any, Literal
 import numpy as np
 
 from . import spectra
+from .atomic import write_text_atomic
 
 if TYPE_CHECKING:  # pragma: no cover
     import xarray as xr
@@ -245,20 +245,7 @@ def spectrum_table(ds: Any, quantity: str | None = None) -> SpectrumTable:
 # --------------------------------------------------------------------------------------------
 def _atomic_write(path: Path, text: str) -> None:
     """Write text to a temporary file next to path, then rename it over path."""
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8", newline="\n") as fh:
-            fh.write(text)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        try:
-            os.unlink(tmp)
-        except FileNotFoundError:
-            pass
-        raise
+    write_text_atomic(path, text)
 
 
 def _fmt(x: float) -> str:

@@ -38,6 +38,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 from . import export, spectra
+from .atomic import atomic_target
 
 if TYPE_CHECKING:  # pragma: no cover
     import xarray as xr
@@ -464,9 +465,8 @@ def plot_all(path_nc: str | os.PathLike[str], outdir: str | os.PathLike[str] | N
         for quantity, ax in zip(("mean", "var", "tau"), axes):
             plot_validity(ds, quantity, ax=ax)
         target = out / f"{stem}_validity.png"
-        tmp = target.with_name(f".{target.name}.tmp")
-        fig.savefig(tmp, dpi=DPI, format="png")
-        os.replace(tmp, target)
+        with atomic_target(target) as tmp:
+            fig.savefig(tmp, dpi=DPI, format="png")
         return [target]
     if "sweep" in ds.dims:
         n_sweep = ds.sizes["sweep"]
@@ -477,9 +477,8 @@ def plot_all(path_nc: str | os.PathLike[str], outdir: str | os.PathLike[str] | N
 
     def save(fig: Any, name: str) -> None:
         target = out / f"{stem}_{name}.png"
-        tmp = target.with_name(f".{target.name}.tmp")
-        fig.savefig(tmp, dpi=DPI, format="png")
-        os.replace(tmp, target)
+        with atomic_target(target) as tmp:
+            fig.savefig(tmp, dpi=DPI, format="png")
         written.append(target)
 
     names = [str(s) for s in ds["species"].values] if "species" in ds.coords else []

@@ -27,7 +27,6 @@ import hashlib
 import itertools
 import json
 import math
-import os
 import tomllib
 from dataclasses import dataclass
 from pathlib import Path
@@ -35,6 +34,7 @@ from typing import Any
 
 import numpy as np
 
+from .atomic import write_text_atomic
 from .scenario import SCHEMA, Scenario, ScenarioError, parse_scenario, set_key
 
 __all__ = ["Vary", "parse_vary", "sweep_points", "point_scenario", "evaluate_point",
@@ -196,9 +196,7 @@ def _signature(scenario: Scenario, varies: list[Vary]) -> str:
 
 
 def _atomic_json(path: Path, obj) -> None:
-    tmp = path.with_suffix(path.suffix + ".part")
-    tmp.write_text(json.dumps(obj))
-    os.replace(tmp, path)
+    write_text_atomic(path, json.dumps(obj))
 
 
 def _parts_dir(out: Path) -> Path:
@@ -287,7 +285,7 @@ def run_sweep(scenario: Scenario, varies: list[Vary], out: str | Path, *,
         return None
     ds = assemble(scenario, varies, [done[i] for i in range(len(points))], command=command)
     save(ds, out)
-    for f in parts.glob("*"):
+    for f in parts.iterdir():  # including temporary files an interruption left behind
         f.unlink()
     parts.rmdir()
     return out
