@@ -246,6 +246,15 @@ def main(argv: list[str] | None = None) -> int:
     except UsageError as exc:
         print(f"grmc: error: {exc}", file=sys.stderr)
         return EXIT_USAGE
+    except Exception as exc:  # known refusals of the solvers: one clear line, no traceback
+        from .continuum import ContinuumError
+        from .exact import StateSpaceTooLarge
+
+        if isinstance(exc, (ContinuumError, StateSpaceTooLarge)):
+            where = getattr(args, "scenario", None) or getattr(args, "file", "")
+            print(f"grmc: error: {where}: {exc}", file=sys.stderr)
+            return EXIT_USAGE
+        raise
     except KeyboardInterrupt:
         print("grmc: interrupted; no output written", file=sys.stderr)
         return EXIT_INTERRUPTED

@@ -463,6 +463,23 @@ def _parse_trap(src: str, index: int, table: Any, volume: Volume) -> Trap:
     )
 
 
+def _check_channels(src: str, material: Material, light: Light, traps: tuple[Trap, ...]) -> None:
+    """Refuse scenarios in which nothing can happen or carriers are made but never lost."""
+    band = (material.radiative_cm3_s, material.auger_electron_cm6_s, material.auger_hole_cm6_s)
+    has_loss = any(c > 0 for c in band) or any(
+        t.electron_capture_cm3_s > 0 and t.hole_capture_cm3_s > 0 for t in traps)
+    light_on = light.waveform != "off" and light.generation_cm3_s > 0
+    if not has_loss and not traps and not light_on:
+        raise ScenarioError(src, "material", "radiative_cm3_s",
+                            "no event channel: give a radiative or Auger coefficient, a trap "
+                            "level or light")
+    if light_on and not has_loss:
+        raise ScenarioError(src, "light", "generation_cm3_s",
+                            "light makes pairs but nothing recombines them (no radiative or "
+                            "Auger coefficient, no trap level capturing both carriers): the "
+                            "counts would grow without bound")
+
+
 def parse_scenario(data: dict[str, Any], *, source: str = "<string>", text: str = "") -> Scenario:
     """Validate an already-parsed TOML document.
 
@@ -514,6 +531,7 @@ def parse_scenario(data: dict[str, Any], *, source: str = "<string>", text: str 
     light = Light(**_read_table(src, "light", data.get("light", {}), _LIGHT))
     start = Start(**_read_table(src, "start", data.get("start", {}), _START))
     run = RunSettings(**_read_table(src, "run", data.get("run", {}), _RUN))
+    _check_channels(src, material, light, traps)
     readout = None
     if "readout" in data:
         readout = Readout(**_read_table(src, "readout", data["readout"], _READOUT))

@@ -132,3 +132,15 @@ hole_capture_cm3_s = 1e-8
         set_key(data, "traps.b.count", 1)
     with pytest.raises(ScenarioError, match="did you mean"):
         set_key(data, "material.radiative_cm3", 1.0)
+
+
+def test_scenario_where_nothing_happens_or_nothing_recombines():
+    nothing = BASE.replace("radiative_cm3_s = 1.0e-10", "")
+    with pytest.raises(ScenarioError, match=r"\[material\] radiative_cm3_s: no event channel"):
+        load_scenario(text=nothing)
+    with pytest.raises(ScenarioError, match=r"\[light\] generation_cm3_s: light makes pairs"):
+        load_scenario(text=nothing + "\n[light]\ngeneration_cm3_s = 1e20\n")
+    # in the dark, a trap level alone is a valid (if quiet) scenario
+    trap = "\n[[traps]]\nlabel = \"t\"\ncount = 2\nelectron_capture_cm3_s = 1e-8\n" \
+           "hole_capture_cm3_s = 0.0\n"
+    assert load_scenario(text=nothing + trap).traps[0].count == 2
