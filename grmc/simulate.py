@@ -203,7 +203,7 @@ def run(
     tmean = np.array([row[1] for row in acc.traj])
     tmsq = np.array([row[2] for row in acc.traj])
     st_mean = tmean.mean(axis=0)
-    st_var = tmsq.mean(axis=0) - st_mean**2
+    st_var = np.maximum(tmsq.mean(axis=0) - st_mean**2, 0.0)  # rounding can dip below 0
     per_var = tmsq - 2.0 * st_mean * tmean + st_mean**2  # each trajectory's about the pooled
     if n > 1:
         st_err = tmean.std(axis=0, ddof=1) / np.sqrt(n)

@@ -724,6 +724,8 @@ def _p_value(chi2: float, dof: int, kurt: float) -> float:
 
 def _model_log(theta: np.ndarray, f: np.ndarray, t_seg: float | None) -> np.ndarray:
     total = np.zeros_like(f)
+    # log parameters are clipped to the float range: the optimizer may probe wild values
+    theta = np.clip(theta, -700.0, 700.0)
     for i in range(0, theta.size, 2):
         s0, fc = math.exp(theta[i]), math.exp(theta[i + 1])
         total += s0 / (1.0 + (f / fc) ** 2) * rectangular_window_factor(f, fc, t_seg)
@@ -757,7 +759,7 @@ def _least_squares(
     try:
         with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
             res = optimize.least_squares(resid, theta0, method="trf", max_nfev=2000)
-    except (ValueError, FloatingPointError):
+    except (ValueError, FloatingPointError, OverflowError, ZeroDivisionError):
         return _Fit(theta0, bad, float("inf"), False, dof, float("nan"))
     try:
         cov = np.linalg.inv(res.jac.T @ res.jac)
