@@ -73,6 +73,10 @@ def format_run_table(ds) -> str:
         )
     lines.append(f"  ('!': differs by more than {FLAG_SIGMAS:g} standard errors; in a small "
                  "volume the continuum answer is expected to be off)")
+    if int(ds.attrs.get("excess_pairs", 0)) > 0:
+        lines.append("  note: the window starts with a pulse of excess pairs, so the time averages "
+                     "above include the decay and are not stationary values; see the transient "
+                     "(count_mean against count_continuum)")
     if "tau_spectrum" in ds:
         lines.append("  time constants from the spectra, tau = 1/(2 pi f_c):")
         for i, s in enumerate(ds["species"].values):

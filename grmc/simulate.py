@@ -294,6 +294,7 @@ def run(
         "volume_cm3": float(scenario.volume.volume_cm3),
         "duration_s": float(duration),
         "settle_s": float(rs.settle_s),
+        "excess_pairs": int(scenario.start.excess_pairs),
         "samples": int(n_samples),
         "dopants": rs.dopants,
         "psd_segments_per_trajectory": int(segments),

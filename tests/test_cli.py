@@ -185,3 +185,12 @@ def test_demo_end_to_end(tmp_path, capsys):
     assert got["netcdf"].is_file() and len(got["plots"]) >= 4 and len(got["exports"]) >= 2
     for p in [got["netcdf"], *got["plots"], *got["exports"]]:
         assert str(p) in printed
+
+
+@pytest.mark.parametrize("path", sorted(Path(__file__).resolve().parents[1]
+                                        .joinpath("scenarios").glob("*.toml")),
+                         ids=lambda p: p.stem)
+def test_bundled_scenarios_inspect(path, capsys):
+    """Every bundled scenario is valid and `inspect` explains it."""
+    assert main(["inspect", str(path)]) == 0
+    assert "relaxation times" in capsys.readouterr().out
