@@ -98,3 +98,19 @@ def test_point_falls_back_to_monte_carlo():
     mean_h, _ = pair_reaction_exact(4.0, 0)
     assert abs(res["mean"][h] - mean_h) < 4 * res["mean_err"][h]
     assert res["mean_err"][h] > 0 and np.isfinite(res["tau"][h])
+
+
+def test_sweep_attaches_to_a_running_scheduler(tmp_path):
+    """`--scheduler ADDRESS`: the sweep runs on an existing Dask cluster and gives the same
+    data as on its own local cluster (points are seeded from (seed, index) only)."""
+    from dask.distributed import LocalCluster
+
+    scen = grmc.load_scenario(text=PAIR)
+    vary = [parse_vary("volume.volume_cm3=1e-10:2e-10:2")]
+    with LocalCluster(n_workers=1, threads_per_worker=1, processes=False,
+                      dashboard_address=None) as cluster:
+        remote = run_sweep(scen, vary, tmp_path / "remote.nc", scheduler=cluster.scheduler_address)
+    local = run_sweep(scen, vary, tmp_path / "local.nc", workers=1)
+    a, b = load(remote), load(local)
+    for name in a.data_vars:
+        np.testing.assert_array_equal(a[name].values, b[name].values, err_msg=name)
