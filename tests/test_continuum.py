@@ -73,6 +73,19 @@ def make_model(**kw) -> grmc.Model:
     return grmc.build_model(grmc.load_scenario(text=scenario_text(**kw)))
 
 
+def make_unchecked_model(**kw) -> grmc.Model:
+    """A model the scenario validation would refuse (no loss channel): built from a valid
+    scenario whose radiative coefficient is then set to ``B`` directly, to test the solver's
+    own refusals."""
+    import dataclasses
+
+    B = kw.pop("B")
+    scen = grmc.load_scenario(text=scenario_text(B=1e-10, **kw))
+    scen = dataclasses.replace(scen, material=dataclasses.replace(scen.material,
+                                                                  radiative_cm3_s=B))
+    return grmc.build_model(scen)
+
+
 def rate_of(model, x, name):
     return float(model.rates(x)[model.channel_names.index(name)])
 
@@ -228,11 +241,11 @@ def test_equilibrium_intrinsic():
 
 def test_no_steady_state_raises():
     """Light with no recombination path: carriers are produced and never lost."""
-    model = make_model(B=0.0, G=1e20)
+    model = make_unchecked_model(B=0.0, G=1e20)
     with pytest.raises(cont.ContinuumError, match="never lost"):
         cont.steady_state(model)
-    model = make_model(B=0.0, G=1e20, NA=1e17,
-                       traps=((100, None, 0.0, "acceptor", C_CAPTURE, 0.0),))
+    model = make_unchecked_model(B=0.0, G=1e20, NA=1e17,
+                                 traps=((100, None, 0.0, "acceptor", C_CAPTURE, 0.0),))
     with pytest.raises(cont.ContinuumError, match="holes"):
         cont.steady_state(model)
 
@@ -244,7 +257,7 @@ def test_steady_state_from_start_value_and_empty_model():
     start = model.nearest_neutral_state(x).astype(float) + np.array([5.0, 5.0, 0.0])
     np.testing.assert_allclose(cont.steady_state(model, x0=start), x, rtol=1e-10)
     # no channel at all: nothing moves; the mass-action state is returned
-    quiet = make_model(B=0.0, NA=1e17)
+    quiet = make_unchecked_model(B=0.0, NA=1e17)
     xq = cont.steady_state(quiet)
     assert abs(quiet.charge_of(xq) - quiet.charge) <= 1e-12 * abs(quiet.charge)
     assert np.all(cont.lna(quiet).covariance == 0.0)
