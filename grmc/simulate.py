@@ -42,9 +42,11 @@ SLICE_EVENTS = 2.0e7
 PURPOSE_ENGINE, PURPOSE_DOPANTS = 0, 1
 
 
-def start_state(model: Model) -> np.ndarray:
+def start_state(model: Model, steady: np.ndarray | None = None) -> np.ndarray:
     """The integer neutral state nearest to the continuum steady state [count]."""
-    return model.nearest_neutral_state(continuum.steady_state(model))
+    if steady is None:
+        steady = continuum.steady_state(model)
+    return model.nearest_neutral_state(steady)
 
 
 @dataclass
@@ -54,6 +56,7 @@ class Prepared:
     model: Model
     arrays: tuple
     x0: np.ndarray
+    steady: np.ndarray  # continuum steady state [count]
     channel_map: np.ndarray  # this model's channel index -> index in the full channel list
 
 
@@ -84,7 +87,8 @@ def prepare(model: Model, index: dict[str, int] | None = None) -> Prepared:
     if index is None:
         index = {name: i for i, name in enumerate(model.channel_names)}
     cmap = np.array([index[n] for n in model.channel_names], dtype=np.int64)
-    return Prepared(model, kernel_arrays(model), start_state(model), cmap)
+    steady = continuum.steady_state(model)
+    return Prepared(model, kernel_arrays(model), start_state(model, steady), steady, cmap)
 
 
 def _all_channel_names(scenario: Scenario, counts: Counts) -> tuple[str, ...]:
@@ -214,7 +218,7 @@ def run(
         var_err = np.full(S, np.nan)
 
     # ------------------------------------------------------------ continuum and noise theory
-    ss = continuum.steady_state(model0)
+    ss = base.steady
     lna = continuum.lna(model0)
     t = np.arange(n_samples) * (duration / n_samples)
     x_cont = continuum.transient(model0, mean_t[0], t).T
