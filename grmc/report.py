@@ -26,7 +26,9 @@ def _flag(value: float, reference: float, stderr: float) -> str:
     if math.isfinite(stderr) and stderr > 0:
         z = (value - reference) / stderr
         return f"{z:+.1f}σ" + (" !" if abs(z) > FLAG_SIGMAS else "")
-    return "" if value == reference else "!"
+    if stderr == 0 and value != reference:  # no fluctuation at all, yet a different value
+        return "!"
+    return ""  # no standard error to judge by (e.g. one trajectory)
 
 
 def _fit_text(ds, name: str, kind_name: str, i: int) -> str:
