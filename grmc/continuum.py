@@ -880,6 +880,42 @@ def lna_psd(
 # --------------------------------------------------------------------------------------------
 
 
+def drive_response(model: Model, *, channel: int, kind: int, frequency_Hz: float,
+                   depth: float) -> tuple[np.ndarray, np.ndarray]:
+    """Linear response of the mean counts to a modulated channel, at the drive frequency.
+
+    The channel's rate is ``w_r(x) h(t)`` with ``h = 1 + m sin(w t)`` (kind 1, sine) or
+    ``1 +/- m`` by the sign of ``sin(w t)`` (kind 2, square; its fundamental has amplitude
+    ``4 m / pi``).  Linearising the rate equations about the steady state (Jacobian A),
+    ``dx = Im[H(w) e^{i w t}] w_r a_1`` with ``H(w) = (i w I - A)^-1 nu_r`` and ``a_1`` the
+    fundamental's amplitude, so the response at the drive frequency is
+    ``amplitude * sin(w t + phase)`` (common practice: the transfer function of a linear
+    system driven at one frequency).
+
+    Parameters
+    ----------
+    model : Model
+    channel : int  Index of the modulated channel
+    kind : int  1 sine, 2 square
+    frequency_Hz : float  Drive frequency f [Hz]
+    depth : float  Modulation depth m [1]
+
+    Returns
+    -------
+    amplitude : ndarray (species,)  [count]
+    phase : ndarray (species,)  Phase relative to sin(2 pi f t) [rad], in (-pi, pi]
+    """
+    res = lna(model)
+    w = 2.0 * math.pi * frequency_Hz
+    A = np.asarray(res.jacobian, dtype=float)
+    nu = model.stoich[channel].astype(float)
+    H = np.linalg.solve(1j * w * np.eye(A.shape[0]) - A, nu)
+    rate = float(model.rates(res.mean)[channel])
+    fundamental = depth if kind == 1 else 4.0 * depth / math.pi
+    response = H * rate * fundamental
+    return np.abs(response), np.angle(response)
+
+
 def total_event_rate(
     model: Model, x: np.ndarray, *, law: Literal["exact", "macro"] = "exact"
 ) -> float:

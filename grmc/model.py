@@ -423,6 +423,24 @@ class Model:
         """The same scenario with other dopant and trap counts (one device of a population)."""
         return build_model(self.scenario, counts=counts)
 
+    @property
+    def modulation(self) -> tuple[int, int, float, float, float] | None:
+        """The modulated optical channel, as the engine takes it, or None.
+
+        Returns
+        -------
+        (channel index, kind (1 sine, 2 square), frequency [Hz], depth [1], phase [rad])
+        or None for steady light, no light, or no optical channel.  The channel's
+        coefficient is the MEAN generation rate; the engine multiplies it by h(t) with
+        mean 1 (exact by thinning).
+        """
+        light = self.scenario.light
+        if not light.modulated or "optical generation" not in self.channel_names:
+            return None
+        kind = 1 if light.waveform == "sine" else 2
+        return (self.channel_names.index("optical generation"), kind,
+                float(light.modulation_frequency_Hz), float(light.modulation_depth), 0.0)
+
     def describe(self) -> list[dict]:
         """One dict per channel: name, coefficient and change, for tables and tests."""
         return [
@@ -465,7 +483,7 @@ def build_model(scenario: Scenario, *, counts: Counts | None = None) -> Model:
     add("thermal generation", B * ni * ni * vol, (), pair_up, "radiative recombination")
     add("radiative recombination", B / vol, (Factor(E), Factor(H)), pair_down,
         "thermal generation")
-    if scenario.light.waveform == "steady":
+    if scenario.light.waveform != "off":  # steady, or the mean of a modulated waveform
         add("optical generation", scenario.light.generation_cm3_s * vol, (), pair_up)
     Cn = mat.auger_electron_cm6_s
     add("Auger eeh", Cn / vol**2, (Factor(E), Factor(E, 1, -1.0, 0.0), Factor(H)), pair_down,

@@ -86,6 +86,15 @@ def format_run_table(ds) -> str:
     if "relaxation_time_lna" in ds and ds["relaxation_time_lna"].size:
         times = ", ".join(_g(t, 3) for t in ds["relaxation_time_lna"].values)
         lines.append(f"  linear-noise relaxation times:      {times} s")
+    if "response_amplitude" in ds:
+        lines.append("  response at the drive frequency (amplitude, phase vs sin(2 pi f t)):")
+        for i, s in enumerate(ds["species"].values):
+            a, ae = float(ds["response_amplitude"][i]), float(ds["response_amplitude_stderr"][i])
+            p, pe = float(ds["response_phase"][i]), float(ds["response_phase_stderr"][i])
+            ca, cp = (float(ds["response_amplitude_continuum"][i]),
+                      float(ds["response_phase_continuum"][i]))
+            lines.append(f"    {str(s):<20}{_g(a, 4)} ± {_g(ae, 2)} (continuum {_g(ca, 4)}), "
+                         f"{_g(p, 3)} ± {_g(pe, 2)} rad (continuum {_g(cp, 3)})")
     if "current_mean" in ds:
         i_mean = float(ds["current_mean"])
         lines.append(f"  current: mean {_g(i_mean, 5)} A")

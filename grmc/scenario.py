@@ -142,11 +142,21 @@ class Light:
     Attributes
     ----------
     generation_cm3_s : float  Mean optical pair generation rate per volume [cm^-3 s^-1]
-    waveform : "steady" or "off"
+    waveform : "steady", "off", "sine" or "square"
+    modulation_frequency_Hz : float  Drive frequency of a sine or square waveform [Hz]
+    modulation_depth : float  m in G(t) = G (1 + m sin(2 pi f t)) (sine) or G (1 +/- m)
+        (square, 50 % duty) [1]
     """
 
     generation_cm3_s: float = 0.0
-    waveform: Literal["steady", "off"] = "steady"
+    waveform: Literal["steady", "off", "sine", "square"] = "steady"
+    modulation_frequency_Hz: float = 0.0
+    modulation_depth: float = 0.0
+
+    @property
+    def modulated(self) -> bool:
+        """True for a sine or square waveform."""
+        return self.waveform in ("sine", "square")
 
 
 @dataclass(frozen=True)
@@ -286,7 +296,9 @@ _TRAP = {
 }
 _LIGHT = {
     "generation_cm3_s": _F(default=0.0, lo=0.0),
-    "waveform": _S(default="steady", choices=("steady", "off")),
+    "waveform": _S(default="steady", choices=("steady", "off", "sine", "square")),
+    "modulation_frequency_Hz": _F(default=0.0, lo=0.0),
+    "modulation_depth": _F(default=0.0, lo=0.0),
 }
 _START = {"excess_pairs": _I(default=0, lo=0)}
 _RUN = {
@@ -463,6 +475,21 @@ def _parse_trap(src: str, index: int, table: Any, volume: Volume) -> Trap:
     )
 
 
+def _check_modulation(src: str, light: Light, table: dict) -> None:
+    if light.modulated:
+        if light.modulation_frequency_Hz <= 0:
+            raise ScenarioError(src, "light", "modulation_frequency_Hz",
+                                f"waveform = {light.waveform!r} needs a frequency > 0")
+        if light.modulation_depth > 1.0:
+            raise ScenarioError(src, "light", "modulation_depth",
+                                f"must be within [0, 1], got {light.modulation_depth!r}")
+    else:
+        for key in ("modulation_frequency_Hz", "modulation_depth"):
+            if key in table:
+                raise ScenarioError(src, "light", key, f"is used only with waveform = 'sine' or "
+                                    f"'square'; it would be ignored with {light.waveform!r}")
+
+
 def _check_channels(src: str, material: Material, light: Light, traps: tuple[Trap, ...]) -> None:
     """Refuse scenarios in which nothing can happen or carriers are made but never lost."""
     band = (material.radiative_cm3_s, material.auger_electron_cm6_s, material.auger_hole_cm6_s)
@@ -529,6 +556,7 @@ def parse_scenario(data: dict[str, Any], *, source: str = "<string>", text: str 
         seen.add(trap.label)
 
     light = Light(**_read_table(src, "light", data.get("light", {}), _LIGHT))
+    _check_modulation(src, light, data.get("light", {}))
     start = Start(**_read_table(src, "start", data.get("start", {}), _START))
     run = RunSettings(**_read_table(src, "run", data.get("run", {}), _RUN))
     _check_channels(src, material, light, traps)

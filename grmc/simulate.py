@@ -111,6 +111,7 @@ class _Acc:
     group_psd: dict = field(default_factory=dict)  # jackknife group -> psd sum
     group_current_psd: dict = field(default_factory=dict)
     traj: list = field(default_factory=list)  # (index, mean, meansq, batch means, counts)
+    quad: list = field(default_factory=list)  # (index, (2, S) quadratures, (2,) current's)
     n_events: int = 0
 
 
@@ -268,6 +269,9 @@ def run(
         cfit = spectra.analyse_spectrum(freqs, cur_psd, c_low, c_high, k_total, batches=cgroups)
         data.update(_fit_vars([cfit], prefix="current_", species_dim=False))
 
+    if model0.modulation is not None:
+        data.update(_response_vars(acc, model0, readout is not None, a_e, a_h))
+
     hist = _histogram(acc.hist, S)
     coords = {
         "t": ("t", t),
@@ -348,6 +352,17 @@ def _slice_plan(base: Prepared, rs) -> _SlicePlan:
     return _SlicePlan(settle, window)
 
 
+def _modulation_at(prep: Prepared, t_start: float) -> dict:
+    """The engine's ``modulation`` argument for a call whose clock starts at window time
+    ``t_start`` (the drive's phase carried over, so slices join into one waveform)."""
+    mod = prep.model.modulation
+    if mod is None:
+        return {}
+    channel, kind, freq, depth, phase = mod
+    return {"modulation": (channel, kind, freq, depth,
+                           math.fmod(phase + 2.0 * math.pi * freq * t_start, 2.0 * math.pi))}
+
+
 class _Joined:
     """A trajectory assembled from time slices (the fields the reductions read)."""
 
@@ -368,12 +383,14 @@ def _simulate_sliced(simulate_trajectory, prep: Prepared, rng_state: np.ndarray,
     # a short settling runs inside the first window call (the kernel's own settle phase);
     # a long one in slices of its own, whose records are discarded
     settle_first = rs.settle_s if plan.settle_slices == 1 else 0.0
-    for _ in range(plan.settle_slices if plan.settle_slices > 1 else 0):
+    for k in range(plan.settle_slices if plan.settle_slices > 1 else 0):
         if cancel.is_set():
             raise Cancelled
         x = simulate_trajectory(*prep.arrays, x0=x, rng_state=rng_state, settle_s=0.0,
                                 excess=zero, duration_s=rs.settle_s / plan.settle_slices,
-                                n_samples=1, oversample=1).final
+                                n_samples=1, oversample=1,
+                                **_modulation_at(prep, -rs.settle_s + k * rs.settle_s
+                                                 / plan.settle_slices)).final
         tick(1)
     parts = []
     n = rs.samples // plan.window_slices
@@ -384,7 +401,8 @@ def _simulate_sliced(simulate_trajectory, prep: Prepared, rng_state: np.ndarray,
                                   settle_s=settle_first if k == 0 else 0.0,
                                   excess=excess if k == 0 else zero,
                                   duration_s=rs.duration_s / plan.window_slices, n_samples=n,
-                                  oversample=OVERSAMPLE)
+                                  oversample=OVERSAMPLE,
+                                  **_modulation_at(prep, k * rs.duration_s / plan.window_slices))
         x = res.final
         parts.append(res)
         tick(1 + (k == 0 and plan.settle_slices == 1))
@@ -417,6 +435,12 @@ def _reduce_one(acc: _Acc, i: int, res, prep: Prepared, ref: np.ndarray, dt_fine
         if group is not None:
             acc.group_current_psd[group] = (acc.group_current_psd[group] + pii
                                             if group in acc.group_current_psd else pii)
+    mod = prep.model.modulation
+    if mod is not None:
+        q = spectra.drive_quadratures(res.bins, dt_fine, mod[2])
+        qi = (spectra.drive_quadratures(a_e * res.bins[:, 0] + a_h * res.bins[:, 1], dt_fine,
+                                        mod[2]) if current else None)
+        acc.quad.append((i, q, qi))
     batches = np.array([b.mean(axis=0) for b in np.array_split(res.bins, N_BATCHES)])
     acc.traj.append((i, res.integ / duration, res.integ2 / duration, batches,
                      prep.model.counts))
@@ -448,6 +472,7 @@ def _combine(parts: list[_Acc]) -> _Acc:
             continue
         if out.n == 0:
             out = dataclasses.replace(p, traj=list(p.traj), hist=dict(p.hist),
+                                      quad=list(p.quad),
                                       group_psd=dict(p.group_psd),
                                       group_current_psd=dict(p.group_current_psd))
             continue
@@ -463,6 +488,7 @@ def _combine(parts: list[_Acc]) -> _Acc:
         if p.current_psd is not None:
             out.current_psd = out.current_psd + p.current_psd
         out.traj.extend(p.traj)
+        out.quad.extend(p.quad)
         out.n_events += p.n_events
         for s, h in p.hist.items():
             out.hist[s] = _add_hist(out.hist[s], h)
@@ -495,6 +521,40 @@ def _histogram(hist: dict, n_species: int):
         probs[s] = 0.0
         probs[s, start - lo:start - lo + len(counts)] = counts / counts.sum()
     return np.arange(lo, hi, dtype=np.int64), probs
+
+
+def _response_vars(acc: _Acc, model: Model, current: bool, a_e: float, a_h: float) -> dict:
+    """Response at the drive frequency (Monte Carlo lock-in beside the continuum transfer
+    function)."""
+    channel, kind, freq, depth, _ = model.modulation
+    acc.quad.sort(key=lambda row: row[0])
+    amp, amp_err, ph, ph_err = spectra.response_from_quadratures(
+        np.array([row[1] for row in acc.quad]))
+    c_amp, c_ph = continuum.drive_response(model, channel=channel, kind=kind,
+                                           frequency_Hz=freq, depth=depth)
+    out = {
+        "response_amplitude": (("species",), amp),
+        "response_amplitude_stderr": (("species",), amp_err),
+        "response_phase": (("species",), ph),
+        "response_phase_stderr": (("species",), ph_err),
+        "response_amplitude_continuum": (("species",), c_amp),
+        "response_phase_continuum": (("species",), c_ph),
+    }
+    if current:
+        i_amp, i_err, i_ph, i_ph_err = spectra.response_from_quadratures(
+            np.array([row[2] for row in acc.quad]))
+        # the current is linear in the counts: its continuum response is the same combination
+        resp = c_amp * np.exp(1j * c_ph)
+        i_c = a_e * resp[0] + a_h * resp[1]
+        out.update({
+            "current_response_amplitude": ((), float(i_amp)),
+            "current_response_amplitude_stderr": ((), float(i_err)),
+            "current_response_phase": ((), float(i_ph)),
+            "current_response_phase_stderr": ((), float(i_ph_err)),
+            "current_response_amplitude_continuum": ((), float(abs(i_c))),
+            "current_response_phase_continuum": ((), float(np.angle(i_c))),
+        })
+    return out
 
 
 def _jackknife_groups(n_traj: int) -> int | None:

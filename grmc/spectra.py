@@ -1107,3 +1107,58 @@ def analyse_spectrum(
         "unresolved", (), one,
         f"one Lorentzian is rejected ({one_txt}) and two are not trustworthy ({why})",
     )
+
+
+def drive_quadratures(bins: np.ndarray, dt_fine: float, frequency_Hz: float) -> np.ndarray:
+    """Sine and cosine amplitudes of a record at a drive frequency (a digital lock-in).
+
+    Least-squares fit of ``c + a sin(w t) + b cos(w t)`` to the fine-bin averages at the bin
+    centres, with the bin-averaging factor sinc(f dt) divided out, so that for a response
+    ``R sin(w t + phi)`` the expectation is ``a = R cos(phi)``, ``b = R sin(phi)``
+    (a bin average of ``sin(w t + phi)`` over ``[t_j, t_j + dt]`` is
+    ``sinc(f dt) sin(w t_mid + phi)``, exactly).
+
+    Parameters
+    ----------
+    bins : ndarray (n_fine,) or (n_fine, S)  Exact time averages over fine bins [unit]
+    dt_fine : float  Bin width [s]
+    frequency_Hz : float  Drive frequency f [Hz]
+
+    Returns
+    -------
+    ndarray (2,) or (2, S)  ``(a, b)`` [unit]
+    """
+    x = np.asarray(bins, dtype=float)
+    n = x.shape[0]
+    t_mid = (np.arange(n) + 0.5) * dt_fine
+    w = 2.0 * math.pi * frequency_Hz
+    design = np.column_stack([np.ones(n), np.sin(w * t_mid), np.cos(w * t_mid)])
+    coef, *_ = np.linalg.lstsq(design, x, rcond=None)
+    return coef[1:] / np.sinc(frequency_Hz * dt_fine)
+
+
+def response_from_quadratures(quad: np.ndarray) -> tuple[np.ndarray, ...]:
+    """Amplitude and phase, with standard errors, from per-trajectory quadratures.
+
+    Parameters
+    ----------
+    quad : ndarray (n_traj, 2, ...)  ``(a, b)`` of each trajectory
+
+    Returns
+    -------
+    amplitude, amplitude_stderr, phase [rad], phase_stderr [rad]  (first-order error
+    propagation from the spread of a and b over trajectories; NaN errors for one trajectory)
+    """
+    q = np.asarray(quad, dtype=float)
+    n = q.shape[0]
+    a, b = q[:, 0].mean(axis=0), q[:, 1].mean(axis=0)
+    if n > 1:
+        sa = q[:, 0].std(axis=0, ddof=1) / math.sqrt(n)
+        sb = q[:, 1].std(axis=0, ddof=1) / math.sqrt(n)
+    else:
+        sa = sb = np.full_like(a, np.nan)
+    amp = np.hypot(a, b)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        amp_err = np.hypot(a * sa, b * sb) / amp
+        phase_err = np.hypot(b * sa, a * sb) / amp**2
+    return amp, amp_err, np.arctan2(b, a), phase_err

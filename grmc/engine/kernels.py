@@ -48,14 +48,25 @@ Per event, in this order:
    places are compared without branches, which gives the same place since the running sum
    never decreases); if rounding leaves none, the last place in ``order`` with ``a > 0``;
    then the swap above;
-6. ``t = t_new``; apply the change (recording first integrates each changed species over
-   the time since it was last integrated to: ``acc += x * dt``, ``acc2 += (x * x) * dt``);
+5a. (only with a modulation, and only when the selected channel is the modulated one r)
+   ``u3 = next_double``; with the window time ``tw = t_new + t_shift`` (``t_shift = 0.0``
+   in the window, ``-settle_s`` while settling) and ``arg = w * tw + phase`` (``w = (2.0 *
+   pi) * frequency_Hz``): ``h = 1.0 + depth * sin(arg)`` (sine) or ``h = 1.0 + depth`` if
+   ``sin(arg) >= 0.0`` else ``1.0 - depth`` (square); unless ``u3 * (1.0 + depth) < h``
+   the candidate is rejected: ``t = t_new``, nothing else changes (no state change, no
+   count, no flow; the swap of step 5 stays) and the loop goes on at step 1;
+6. ``t = t_new``; apply the change (recording first counts the event in ``events_out`` and,
+   with flow recording, adds ``flow_weight[p]`` to ``flows_out[j]`` of the current fine bin
+   j, the one with ``e_j < t <= e_{j+1}`` (bin 0 also holds t = 0); then it integrates each
+   changed species over the time since it was last integrated to: ``acc += x * dt``,
+   ``acc2 += (x * x) * dt``);
 7. update the slots of the changed species, then re-evaluate the dependent channels;
    recompute a0.
 
 The settling phase runs on its own clock from 0 to ``settle_s`` with steps 1-3 and 5-7 and no
-recording.  Then ``excess`` is added and (if it is not zero) every slot and propensity is
-re-evaluated; the window starts at t = 0 with a fresh draw (exact by the Markov property).
+recording (a modulation sees it as window time ``t - settle_s``, from -settle_s to 0).  Then
+``excess`` is added and (if it is not zero) every slot and propensity is re-evaluated; the
+window starts at t = 0 with a fresh draw (exact by the Markov property).
 
 Recording: fine bin j covers ``[e_j, e_{j+1}]`` with ``e_j = duration_s * (j / n_bins)``
 (``n_bins = n_samples * oversample``; the quotient in floating point), so the sample times
@@ -69,6 +80,16 @@ integrals of the piecewise-constant path, summed bin by bin) and, at every
 species and bins; work per bin is O(species); an event that spans many bins closes them in
 a row with the constant state.
 
+Time-modulated channel (optional, off by default): one channel r has the propensity
+``a_r(x) h(t)`` with ``0 <= h(t) <= 1 + depth``, ``depth`` in [0, 1]: sine ``h = 1 + depth
+sin(2 pi f t + phase)`` or a 50 % square wave ``1 +/- depth`` (the sign of the same sine).
+It is simulated exactly by thinning (Lewis & Shedler 1979): the tables carry the dominating
+channel, coefficient ``k_r * (1.0 + depth)`` (one rounding, in :func:`simulate`), so a0 is
+the total of the dominating process; a candidate of channel r at time t is accepted with
+probability ``h(t) / (1 + depth)`` (step 5a).  A rejected candidate leaves the state alone,
+and by the memoryless property the next candidate is drawn afresh from t.  Without a
+modulation no extra draw is made and every trajectory is the one of the plain engine.
+
 Layout for speed: every channel's changes, slot updates and dependents sit in one record of
 fixed length (padded with no-op entries), so the inner loops have fixed trip counts and the
 branch predictor is not misled by which channel fired; integer tables are uint64, which
@@ -80,6 +101,8 @@ D. T. Gillespie, "A general method for numerically simulating the stochastic tim
 of coupled chemical reactions", J. Comput. Phys. 22, 403 (1976) (the direct method).
 D. Blackman and S. Vigna, "Scrambled linear pseudorandom number generators", ACM Trans.
 Math. Softw. 47, 36 (2021) (xoshiro256++).
+P. A. W. Lewis and G. S. Shedler, "Simulation of nonhomogeneous Poisson processes by
+thinning", Naval Res. Logist. Q. 26, 403 (1979) (the thinning of step 5a).
 J. M. McCollum, G. D. Peterson, C. D. Cox, M. L. Simpson and N. F. Samatova, "The sorting
 direct method for stochastic simulation of biochemical systems with varying reaction
 execution behavior", Comput. Biol. Chem. 30, 39 (2006).
@@ -96,7 +119,10 @@ from ._jit import jit
 from .rng import u64_to_double, xoshiro_step
 
 __all__ = [
+    "SINE",
+    "SQUARE",
     "KernelTables",
+    "Modulation",
     "TrajectoryResult",
     "allocate_outputs",
     "allocate_work",
@@ -104,10 +130,16 @@ __all__ = [
     "check_model",
     "kernel_arrays",
     "run_prepared",
+    "run_prepared_full",
     "run_trajectory",
     "simulate",
     "validate_inputs",
+    "validate_options",
 ]
+
+
+_NO_FLOWS = np.zeros(0, dtype=np.float64)
+_NO_FLOWS.setflags(write=False)
 
 
 class TrajectoryResult(NamedTuple):
@@ -131,6 +163,10 @@ class TrajectoryResult(NamedTuple):
         Events in the window [count]
     rng_state : ndarray of uint64, shape (4,)
         The stream's state after the run (a copy)
+    flows : ndarray of float64, shape (n_samples * oversample,) or (0,)
+        With ``flow_weight``: the sum of ``flow_weight[r]`` over the window's events of each
+        fine bin (an event at t counts in the bin with e_j < t <= e_{j+1}); empty without
+        [count]
     """
 
     samples: np.ndarray
@@ -141,6 +177,34 @@ class TrajectoryResult(NamedTuple):
     final: np.ndarray
     n_events: int
     rng_state: np.ndarray
+    flows: np.ndarray = _NO_FLOWS
+
+
+#: Kinds of :class:`Modulation`.
+SINE = 1
+SQUARE = 2
+
+
+class Modulation(NamedTuple):
+    """A time-modulated channel: its propensity is multiplied by h(t) (module notes).
+
+    Attributes
+    ----------
+    channel : int  The channel index r
+    kind : int  :data:`SINE` (1): h = 1 + depth sin(2 pi f t + phase); :data:`SQUARE` (2):
+        h = 1 + depth where sin(2 pi f t + phase) >= 0, else 1 - depth (50 % duty)
+    frequency_Hz : float  f (>= 0) [Hz]
+    depth : float  In [0, 1]
+    phase_rad : float  [rad]
+
+    t is the window time (0 at the end of settling).
+    """
+
+    channel: int
+    kind: int
+    frequency_Hz: float
+    depth: float
+    phase_rad: float
 
 
 # ============================================================================ compiled parts
@@ -162,6 +226,8 @@ _S48 = np.uint64(48)
 # compile the phase function twice (once per literal).
 _NO = np.bool_(False)
 _YES = np.bool_(True)
+#: ``mod_ch`` of "no modulation": no channel has this index.
+_NO_CHANNEL = np.uint64(2**64 - 1)
 
 
 @jit
@@ -199,12 +265,17 @@ def _close_bins(t_limit, j, bin_start, st, n_species, duration_s, n_bins, oversa
 
 @jit
 def _phase(record, t_end, st, slot, a, order, rng_state, itab, ftab, dims, n_samples,
-           oversample, samples_out, bins_out, integ_out, integ2_out, events_out):
+           oversample, samples_out, bins_out, integ_out, integ2_out, events_out,
+           mod_ch, mod_kind, mod_w, mod_depth, mod_phase, t_shift, flow_on, flow_w,
+           flows_out):
     """The direct method from t = 0 to ``t_end``; records only when ``record`` is true.
 
-    Returns the number of events.  The steps are those of the module notes, in that order.
-    ``a`` holds n_pad propensities and one scratch entry; ``order`` the n_pad search
-    positions.
+    Returns the number of (accepted) events.  The steps are those of the module notes, in
+    that order.  ``a`` holds n_pad propensities and one scratch entry; ``order`` the n_pad
+    search positions.  ``mod_ch`` is the modulated channel (``_NO_CHANNEL``: none),
+    ``mod_kind`` 1 (sine) or 2 (square), ``mod_w = 2 pi f``, ``t_shift`` the window time at
+    this phase's t = 0; ``flow_w`` (float64[C]) and ``flows_out`` are touched only when
+    ``record and flow_on``.
     """
     n_species = samples_out.shape[1]
     n_cols = dims[0]
@@ -281,12 +352,26 @@ def _phase(record, t_end, st, slot, a, order, rng_state, itab, ftab, dims, n_sam
         km = k - np.uint64(k > _U0)  # sorting direct method: swap with the predecessor
         order[k] = order[km]
         order[km] = p
+        if p == mod_ch:                                                 # step 5a
+            v, s0, s1, s2, s3 = xoshiro_step(s0, s1, s2, s3)
+            sn = math.sin(mod_w * (t_new + t_shift) + mod_phase)
+            if mod_kind == 1:
+                h = 1.0 + mod_depth * sn
+            elif sn >= 0.0:
+                h = 1.0 + mod_depth
+            else:
+                h = 1.0 - mod_depth
+            if not (u64_to_double(v) * (1.0 + mod_depth) < h):
+                t = t_new  # thinning: the candidate is rejected, nothing changes
+                continue
         t = t_new                                                       # step 6
         n_events += 1
         bi = p * rec_i
         bf = p * rec_f
         if record:
             events_out[p] += 1
+            if flow_on:
+                flows_out[j] += flow_w[p]
             c = _U0
             while c < n_cols:
                 b = itab[bi + c]
@@ -361,7 +446,31 @@ def run_prepared(x0, coefficient, slot_st, slot_go, fslot, itab, ftab, dims, st,
     Arguments: ``x0``; the fields of :class:`KernelTables` in order, without ``n_pad``; the
     work arrays of :func:`allocate_work` (st, slot, a, order: contents overwritten); then
     the arguments of :func:`run_trajectory` from ``rng_state`` on.  Returns the number of
-    events in the window.  Releases the GIL.
+    events in the window.  Releases the GIL.  No modulation, no flow recording: this is
+    :func:`run_prepared_full` with both off.
+    """
+    # integ_out stands in for the flow arrays, which are never touched with flow_on false
+    # (same argument types: both entry points share one compiled _phase)
+    return run_prepared_full(x0, coefficient, slot_st, slot_go, fslot, itab, ftab, dims, st,
+                             slot, a, order, rng_state, settle_s, excess, duration_s,
+                             n_samples, oversample, samples_out, bins_out, integ_out,
+                             integ2_out, events_out, final_out, _NO_CHANNEL, np.int64(0), 0.0,
+                             0.0, 0.0, _NO, integ_out, integ_out)
+
+
+@jit
+def run_prepared_full(x0, coefficient, slot_st, slot_go, fslot, itab, ftab, dims, st, slot,
+                      a, order, rng_state, settle_s, excess, duration_s, n_samples,
+                      oversample, samples_out, bins_out, integ_out, integ2_out, events_out,
+                      final_out, mod_ch, mod_kind, mod_w, mod_depth, mod_phase, flow_on,
+                      flow_w, flows_out):
+    """:func:`run_prepared` with the optional modulation and flow recording.
+
+    Extra arguments: ``mod_ch`` (uint64, the modulated channel; 2^64 - 1 for none; the
+    tables must carry its coefficient times ``1.0 + mod_depth``), ``mod_kind`` (int64, 1 sine,
+    2 square), ``mod_w`` (``(2.0 * pi) * frequency_Hz``), ``mod_depth``, ``mod_phase``
+    (float64); ``flow_on`` (bool), ``flow_w`` (float64[C], the flow weights), ``flows_out``
+    (float64[n_samples * oversample], zeroed here when ``flow_on``).
     """
     n_species = x0.shape[0]
     for s in range(st.shape[0] // 4):
@@ -377,9 +486,14 @@ def run_prepared(x0, coefficient, slot_st, slot_go, fslot, itab, ftab, dims, st,
             order[m] = order[m - 1]
             m -= 1
         order[m] = k
+    if flow_on:
+        for i in range(flows_out.shape[0]):
+            flows_out[i] = 0.0
     if settle_s > 0.0:
         _phase(_NO, settle_s, st, slot, a, order, rng_state, itab, ftab, dims, n_samples,
-               oversample, samples_out, bins_out, integ_out, integ2_out, events_out)
+               oversample, samples_out, bins_out, integ_out, integ2_out, events_out,
+               mod_ch, mod_kind, mod_w, mod_depth, mod_phase, -settle_s, flow_on, flow_w,
+               flows_out)
     changed = False
     for s in range(n_species):
         if excess[s] != 0:
@@ -389,7 +503,8 @@ def run_prepared(x0, coefficient, slot_st, slot_go, fslot, itab, ftab, dims, st,
         _evaluate_all(st, slot, a, coefficient, slot_st, slot_go, fslot)
     n_events = _phase(_YES, duration_s, st, slot, a, order, rng_state, itab, ftab, dims,
                       n_samples, oversample, samples_out, bins_out, integ_out, integ2_out,
-                      events_out)
+                      events_out, mod_ch, mod_kind, mod_w, mod_depth, mod_phase, 0.0, flow_on,
+                      flow_w, flows_out)
     for s in range(n_species):
         final_out[s] = np.int64(st[4 * s])
     return n_events
@@ -788,6 +903,52 @@ def validate_inputs(stoich, coefficient, factor_species, factor_sign, factor_off
             "tables": checked.tables}
 
 
+def validate_options(modulation, flow_weight, n_channels: int):
+    """Check and convert the optional ``modulation`` and ``flow_weight`` of :func:`simulate`
+    (shared with the oracle).
+
+    Returns
+    -------
+    (Modulation or None, ndarray of float64 shape (C,) or None)
+        The modulation with plain Python int and float fields; the flow weights as float64
+        (exact: they are integers below 2^53 in magnitude).
+
+    Raises
+    ------
+    ValueError
+        On a channel out of range, a kind other than 1 (sine) or 2 (square), a negative or
+        non-finite frequency, a depth outside [0, 1], a non-finite phase, or flow weights
+        that are not C integers below 2^52 in magnitude.
+    """
+    mod = None
+    if modulation is not None:
+        if len(modulation) != 5:
+            raise ValueError("modulation must be (channel, kind, frequency_Hz, depth, "
+                             "phase_rad)")
+        channel, kind, freq, depth, phase = modulation
+        if int(channel) != channel or not 0 <= int(channel) < n_channels:
+            raise ValueError(f"modulation channel must be an index in [0, {n_channels})")
+        if kind not in (SINE, SQUARE):
+            raise ValueError("modulation kind must be 1 (sine) or 2 (square)")
+        freq, depth, phase = float(freq), float(depth), float(phase)
+        if not (math.isfinite(freq) and freq >= 0.0):
+            raise ValueError("modulation frequency_Hz must be finite and >= 0")
+        if not (0.0 <= depth <= 1.0):
+            raise ValueError("modulation depth must be in [0, 1]")
+        if not math.isfinite(phase):
+            raise ValueError("modulation phase_rad must be finite")
+        mod = Modulation(int(channel), int(kind), freq, depth, phase)
+    fw = None
+    if flow_weight is not None:
+        w = _as(flow_weight, np.int64, 1, "flow_weight")
+        if w.shape != (n_channels,):
+            raise ValueError(f"flow_weight has shape {w.shape}, expected ({n_channels},)")
+        if np.any(np.abs(w) >= 2**52):
+            raise ValueError("flow weights must be below 2^52 in magnitude")
+        fw = w.astype(np.float64)
+    return mod, fw
+
+
 def allocate_outputs(n_species: int, n_channels: int, n_samples: int,
                      oversample: int) -> tuple[np.ndarray, ...]:
     """Zeroed output arrays of one trajectory: samples, bins, integ, integ2, events, final."""
@@ -801,8 +962,8 @@ def allocate_outputs(n_species: int, n_channels: int, n_samples: int,
 
 def simulate(stoich, coefficient, factor_species, factor_sign, factor_offset, dep_indptr,
              dep_indices, *, x0, rng_state: np.ndarray, settle_s: float = 0.0,
-             excess=None, duration_s: float, n_samples: int,
-             oversample: int = 1) -> TrajectoryResult:
+             excess=None, duration_s: float, n_samples: int, oversample: int = 1,
+             modulation=None, flow_weight=None) -> TrajectoryResult:
     """Simulate one trajectory with the compiled engine.
 
     Parameters
@@ -818,6 +979,15 @@ def simulate(stoich, coefficient, factor_species, factor_sign, factor_offset, de
     duration_s : float  Window length [s]
     n_samples : int  Samples at t_k = duration_s * k / n_samples, k = 0..n_samples-1
     oversample : int  Fine bins per sample interval (>= 1)
+    modulation : Modulation or 5-tuple, optional
+        ``(channel, kind, frequency_Hz, depth, phase_rad)``: the channel's propensity is
+        multiplied by h(t) (sine or square, see :class:`Modulation`), simulated exactly by
+        thinning (module notes, step 5a).  None (default): no modulation, and the
+        trajectory is exactly the one without this argument.
+    flow_weight : array_like of int, shape (C,), optional
+        Record ``flows``: each window event of channel r adds ``flow_weight[r]`` to its fine
+        bin (e.g. +1 for a channel that delivers a carrier to a contact: the current is
+        ``q * flows / bin width``).  None (default): ``flows`` is empty.
 
     Returns
     -------
@@ -826,7 +996,7 @@ def simulate(stoich, coefficient, factor_species, factor_sign, factor_offset, de
     Raises
     ------
     ValueError, TypeError
-        See :func:`validate_inputs`.
+        See :func:`validate_inputs` and :func:`validate_options`.
 
     Notes
     -----
@@ -853,11 +1023,29 @@ def simulate(stoich, coefficient, factor_species, factor_sign, factor_offset, de
                         dep_indptr, dep_indices, x0=x0, rng_state=rng_state,
                         settle_s=settle_s, excess=excess, duration_s=duration_s,
                         n_samples=n_samples, oversample=oversample)
+    mod, fw = validate_options(modulation, flow_weight, v["stoich"].shape[0])
     tables = v["tables"]
     out = allocate_outputs(v["x0"].shape[0], v["stoich"].shape[0], v["n_samples"],
                            v["oversample"])
+    if mod is None and fw is None:
+        work = allocate_work(tables, v["x0"].shape[0])
+        n_events = run_prepared(v["x0"], *tables[:-1], *work, rng_state, v["settle_s"],
+                                v["excess"], v["duration_s"], np.int64(v["n_samples"]),
+                                np.int64(v["oversample"]), *out)
+        return TrajectoryResult(*out, int(n_events), rng_state.copy())
+    mod_args = (_NO_CHANNEL, np.int64(0), 0.0, 0.0, 0.0)
+    if mod is not None:
+        # the dominating process: the modulated channel at its bound (module notes)
+        coefficient = v["coefficient"].copy()
+        coefficient[mod.channel] = coefficient[mod.channel] * (1.0 + mod.depth)
+        tables = check_model(v["stoich"], coefficient, v["factor_species"], v["factor_sign"],
+                             v["factor_offset"], v["dep_indptr"], v["dep_indices"]).tables
+        mod_args = (np.uint64(mod.channel), np.int64(mod.kind),
+                    (2.0 * math.pi) * mod.frequency_Hz, mod.depth, mod.phase_rad)
+    flows = np.zeros(v["n_samples"] * v["oversample"] if fw is not None else 0)
     work = allocate_work(tables, v["x0"].shape[0])
-    n_events = run_prepared(v["x0"], *tables[:-1], *work, rng_state, v["settle_s"], v["excess"],
-                            v["duration_s"], np.int64(v["n_samples"]),
-                            np.int64(v["oversample"]), *out)
-    return TrajectoryResult(*out, int(n_events), rng_state.copy())
+    n_events = run_prepared_full(
+        v["x0"], *tables[:-1], *work, rng_state, v["settle_s"], v["excess"], v["duration_s"],
+        np.int64(v["n_samples"]), np.int64(v["oversample"]), *out, *mod_args,
+        np.bool_(fw is not None), fw if fw is not None else flows, flows)
+    return TrajectoryResult(*out, int(n_events), rng_state.copy(), flows)

@@ -14,6 +14,8 @@ References
 ----------
 D. T. Gillespie, "A general method for numerically simulating the stochastic time evolution
 of coupled chemical reactions", J. Comput. Phys. 22, 403 (1976).
+P. A. W. Lewis and G. S. Shedler, "Simulation of nonhomogeneous Poisson processes by
+thinning", Naval Res. Logist. Q. 26, 403 (1979) (the optional modulated channel).
 J. M. McCollum et al., "The sorting direct method for stochastic simulation of biochemical
 systems with varying reaction execution behavior", Comput. Biol. Chem. 30, 39 (2006).
 """
@@ -24,7 +26,7 @@ import math
 
 import numpy as np
 
-from .kernels import TrajectoryResult, allocate_outputs, validate_inputs
+from .kernels import SINE, TrajectoryResult, allocate_outputs, validate_inputs, validate_options
 from .rng import py_state, py_step, py_store, py_u64_to_double
 
 __all__ = ["simulate"]
@@ -33,10 +35,12 @@ __all__ = ["simulate"]
 class _Model:
     """The plain arrays as Python lists (floats and ints)."""
 
-    def __init__(self, v: dict):
+    def __init__(self, v: dict, mod=None):
         self.n_channels = v["stoich"].shape[0]
         self.n_species = v["x0"].shape[0]
         self.coefficient = [float(c) for c in v["coefficient"]]
+        if mod is not None:  # the dominating process: the modulated channel at its bound
+            self.coefficient[mod.channel] = self.coefficient[mod.channel] * (1.0 + mod.depth)
         self.factors = []  # per channel: three (species, sign, offset), None where unused
         for r in range(self.n_channels):
             fac = []
@@ -73,8 +77,10 @@ def _total(a: list[float]) -> float:
 class _Recorder:
     """The window's bins, samples and integrals, in the kernel's operation order."""
 
-    def __init__(self, x, duration_s, n_samples, oversample, out):
+    def __init__(self, x, duration_s, n_samples, oversample, out, flow_weight=None):
         self.samples, self.bins, self.integ, self.integ2, self.events, _ = out
+        self.flow_weight = None if flow_weight is None else [float(w) for w in flow_weight]
+        self.flows = [0.0] * (n_samples * oversample)
         self.duration_s = duration_s
         self.n_bins = n_samples * oversample
         self.oversample = oversample
@@ -130,9 +136,22 @@ class _Recorder:
         self.integ2[:] = self.integ2_l
 
 
+def _accept(mod, tw: float, u3: float) -> bool:
+    """Step 5a: whether a candidate of the modulated channel at window time tw is kept."""
+    sn = math.sin((2.0 * math.pi) * mod.frequency_Hz * tw + mod.phase_rad)
+    if mod.kind == SINE:
+        h = 1.0 + mod.depth * sn
+    else:
+        h = 1.0 + mod.depth if sn >= 0.0 else 1.0 - mod.depth
+    return u3 * (1.0 + mod.depth) < h
+
+
 def _phase(model: _Model, x: list[float], a: list[float], order: list[int], rng: list[int],
-           t_end: float, rec: _Recorder | None) -> int:
-    """One phase (settling when ``rec`` is None); the steps of the kernel's module notes."""
+           t_end: float, rec: _Recorder | None, mod=None, t_shift: float = 0.0) -> int:
+    """One phase (settling when ``rec`` is None); the steps of the kernel's module notes.
+
+    ``mod``: the modulation (or None); ``t_shift``: the window time at this phase's t = 0.
+    """
     a0 = _total(a)
     t = 0.0
     n_events = 0
@@ -160,10 +179,17 @@ def _phase(model: _Model, x: list[float], a: list[float], order: list[int], rng:
         p = order[k]
         if k > 0:
             order[k], order[k - 1] = order[k - 1], p
+        if mod is not None and p == mod.channel:                        # step 5a
+            u3 = py_u64_to_double(py_step(rng))
+            if not _accept(mod, t_new + t_shift, u3):
+                t = t_new
+                continue
         t = t_new                                                       # step 6
         n_events += 1
         if rec is not None:
             rec.events[p] += 1
+            if rec.flow_weight is not None:
+                rec.flows[rec.j] += rec.flow_weight[p]
         for s, d in model.changes[p]:
             if rec is not None:
                 rec.change(s, t, x)
@@ -178,8 +204,8 @@ def _phase(model: _Model, x: list[float], a: list[float], order: list[int], rng:
 
 def simulate(stoich, coefficient, factor_species, factor_sign, factor_offset, dep_indptr,
              dep_indices, *, x0, rng_state: np.ndarray, settle_s: float = 0.0,
-             excess=None, duration_s: float, n_samples: int,
-             oversample: int = 1) -> TrajectoryResult:
+             excess=None, duration_s: float, n_samples: int, oversample: int = 1,
+             modulation=None, flow_weight=None) -> TrajectoryResult:
     """Plain-Python twin of :func:`grmc.engine.kernels.simulate` (same arguments, same result).
 
     Parameters
@@ -195,7 +221,8 @@ def simulate(stoich, coefficient, factor_species, factor_sign, factor_offset, de
                         dep_indptr, dep_indices, x0=x0, rng_state=rng_state,
                         settle_s=settle_s, excess=excess, duration_s=duration_s,
                         n_samples=n_samples, oversample=oversample)
-    model = _Model(v)
+    mod, fw = validate_options(modulation, flow_weight, v["stoich"].shape[0])
+    model = _Model(v, mod)
     out = allocate_outputs(model.n_species, model.n_channels, v["n_samples"], v["oversample"])
     rng = py_state(rng_state)
     x = [float(c) for c in v["x0"]]
@@ -204,7 +231,7 @@ def simulate(stoich, coefficient, factor_species, factor_sign, factor_offset, de
     # initial search order over the n_pad positions: decreasing propensity, ties by position
     order = sorted(range(model.n_pad), key=lambda q: -a[q])
     if v["settle_s"] > 0.0:
-        _phase(model, x, a, order, rng, v["settle_s"], None)
+        _phase(model, x, a, order, rng, v["settle_s"], None, mod, -v["settle_s"])
     excess = [int(e) for e in v["excess"]]
     if any(excess):
         for s in range(model.n_species):
@@ -212,8 +239,9 @@ def simulate(stoich, coefficient, factor_species, factor_sign, factor_offset, de
                 x[s] = x[s] + float(excess[s])
         for q in range(model.n_channels):
             a[q] = model.propensity(q, x)
-    rec = _Recorder(x, v["duration_s"], v["n_samples"], v["oversample"], out)
-    n_events = _phase(model, x, a, order, rng, v["duration_s"], rec)
+    rec = _Recorder(x, v["duration_s"], v["n_samples"], v["oversample"], out, fw)
+    n_events = _phase(model, x, a, order, rng, v["duration_s"], rec, mod, 0.0)
     out[5][:] = [int(c) for c in x]
     py_store(rng, rng_state)
-    return TrajectoryResult(*out, n_events, rng_state.copy())
+    flows = np.array(rec.flows if fw is not None else [], dtype=np.float64)
+    return TrajectoryResult(*out, n_events, rng_state.copy(), flows)
