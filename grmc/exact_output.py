@@ -86,9 +86,9 @@ def exact_dataset(scenario: Scenario, *, command: str | None = None,
     if readout is not None:
         a_e, a_h = spectra.current_scale(readout)
         data["current_mean"] = ((), float(a_e * res.mean[0] + a_h * res.mean[1]))
-        data["current_psd"] = (("frequency",),
-                               spectra.current_psd_from_matrix(res.psd_matrix, a_e, a_h))
-        data["current_psd_lna"] = (("frequency",), spectra.current_psd_from_matrix(smat, a_e, a_h))
+        data["current_psd"] = (("frequency",), spectra.readout_psd(res.psd_matrix, res.mean,
+                                                                    readout))
+        data["current_psd_lna"] = (("frequency",), spectra.readout_psd(smat, ss, readout))
         attrs.update({"readout_bias_V": readout.bias_V, "readout_length_cm": readout.length_cm})
     coords = {
         "t": ("t", t),

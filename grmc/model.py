@@ -125,6 +125,7 @@ class Channel:
     factors : tuple of Factor
     change : tuple of (species index, delta)
     reverse : str or None  Name of the channel that undoes this one (detailed balance pair)
+    flow : int  Carriers collected at a contact per event (0 for recombination-generation)
     """
 
     name: str
@@ -132,6 +133,7 @@ class Channel:
     factors: tuple[Factor, ...]
     change: tuple[tuple[int, int], ...]
     reverse: str | None = None
+    flow: int = 0  # carriers collected at the contact per event (readout current)
 
 
 def _nearest_int(x: float) -> int:
@@ -286,6 +288,13 @@ class Model:
     def factor_offset_macro(self) -> np.ndarray:
         """Offset of each factor in the macroscopic law (1 where unused); (channels, 3)."""
         return self._factor_table("macro_offset", 1.0, np.float64)
+
+    @cached_property
+    def flow_weight(self) -> np.ndarray:
+        """Carriers collected per event of each channel, shape (channels,) [count]."""
+        out = np.array([c.flow for c in self.channels], dtype=np.int64)
+        out.setflags(write=False)
+        return out
 
     @cached_property
     def charge_weights(self) -> np.ndarray:
@@ -475,9 +484,9 @@ def build_model(scenario: Scenario, *, counts: Counts | None = None) -> Model:
     pair_down = ((E, -1), (H, -1))
     ch: list[Channel] = []
 
-    def add(name, coefficient, factors, change, reverse=None):
+    def add(name, coefficient, factors, change, reverse=None, flow=0):
         if coefficient > 0.0:
-            ch.append(Channel(name, float(coefficient), tuple(factors), change, reverse))
+            ch.append(Channel(name, float(coefficient), tuple(factors), change, reverse, flow))
 
     B = mat.radiative_cm3_s
     add("thermal generation", B * ni * ni * vol, (), pair_up, "radiative recombination")
@@ -514,6 +523,14 @@ def build_model(scenario: Scenario, *, counts: Counts | None = None) -> Model:
             f"{lab}: hole emission")
         add(f"{lab}: hole emission", cp * p1, (empty,), ((H, +1), (M, +1)),
             f"{lab}: hole capture")
+    readout = scenario.readout
+    if readout is not None and readout.collection == "events":
+        # ohmic contacts: a carrier drifting out through its collecting contact is replaced
+        # through the other one, so the counts (and neutrality) are unchanged; the event is
+        # one collected carrier of the readout current
+        t_n, t_p = readout.transit_times()
+        add("electrons collected", 1.0 / t_n, (Factor(E),), (), flow=1)
+        add("holes collected", 1.0 / t_p, (Factor(H),), (), flow=1)
     charge = counts.donors - counts.acceptors + donor_traps
     return Model(
         scenario=scenario,

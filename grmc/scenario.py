@@ -203,12 +203,28 @@ class Readout:
     length_cm : float  Distance between contacts L [cm]
     electron_mobility_cm2_Vs : float  mu_n [cm^2 V^-1 s^-1]
     hole_mobility_cm2_Vs : float  mu_p [cm^2 V^-1 s^-1]
+    collection : "mean" or "events"
+        "mean": the current is q bias/L^2 (mu_n N_e + mu_p N_h) of the counts (G-R noise
+        only); "events": every transit of a carrier to its collecting contact is an event
+        (rate N / t_tr, t_tr = L^2 / (mu bias)) and the current is q times the collection
+        events per second, so it carries the shot noise of collection as well.  The ohmic
+        contacts keep the volume neutral: a carrier leaving through one contact is replaced
+        by one entering through the other, so the counts do not change.
     """
 
     bias_V: float
     length_cm: float
     electron_mobility_cm2_Vs: float
     hole_mobility_cm2_Vs: float
+    collection: Literal["mean", "events"] = "mean"
+
+    def transit_times(self) -> tuple[float, float]:
+        """(t_tr,n, t_tr,p) = L^2 / (mu bias) [s]; inf where a mobility or the bias is 0."""
+        out = []
+        for mu in (self.electron_mobility_cm2_Vs, self.hole_mobility_cm2_Vs):
+            rate = mu * abs(self.bias_V) / self.length_cm**2
+            out.append(1.0 / rate if rate > 0 else math.inf)
+        return out[0], out[1]
 
 
 @dataclass(frozen=True)
@@ -314,6 +330,7 @@ _READOUT = {
     "length_cm": _F(required=True, lo=0.0, lo_open=True),
     "electron_mobility_cm2_Vs": _F(required=True, lo=0.0),
     "hole_mobility_cm2_Vs": _F(required=True, lo=0.0),
+    "collection": _S(default="mean", choices=("mean", "events")),
 }
 
 #: Every section's keys, by section name; ``traps`` rows apply to each ``[[traps]]`` entry.
@@ -490,13 +507,14 @@ def _check_modulation(src: str, light: Light, table: dict) -> None:
                                     f"'square'; it would be ignored with {light.waveform!r}")
 
 
-def _check_channels(src: str, material: Material, light: Light, traps: tuple[Trap, ...]) -> None:
+def _check_channels(src: str, material: Material, light: Light, traps: tuple[Trap, ...], *,
+                    collecting: bool = False) -> None:
     """Refuse scenarios in which nothing can happen or carriers are made but never lost."""
     band = (material.radiative_cm3_s, material.auger_electron_cm6_s, material.auger_hole_cm6_s)
     has_loss = any(c > 0 for c in band) or any(
         t.electron_capture_cm3_s > 0 and t.hole_capture_cm3_s > 0 for t in traps)
     light_on = light.waveform != "off" and light.generation_cm3_s > 0
-    if not has_loss and not traps and not light_on:
+    if not has_loss and not traps and not light_on and not collecting:
         raise ScenarioError(src, "material", "radiative_cm3_s",
                             "no event channel: give a radiative or Auger coefficient, a trap "
                             "level or light")
@@ -559,10 +577,11 @@ def parse_scenario(data: dict[str, Any], *, source: str = "<string>", text: str 
     _check_modulation(src, light, data.get("light", {}))
     start = Start(**_read_table(src, "start", data.get("start", {}), _START))
     run = RunSettings(**_read_table(src, "run", data.get("run", {}), _RUN))
-    _check_channels(src, material, light, traps)
     readout = None
     if "readout" in data:
         readout = Readout(**_read_table(src, "readout", data["readout"], _READOUT))
+    _check_channels(src, material, light, traps,
+                    collecting=readout is not None and readout.collection == "events")
     return Scenario(
         title=top["title"],
         notes=top["notes"],

@@ -21,7 +21,14 @@ import numpy as np
 from . import continuum, spectra
 from .dataset import finish
 from .engine.ensemble import Cancelled, chunk_bounds, map_chunks
-from .model import Counts, Model, build_model, draw_counts, nominal_counts
+from .model import (
+    ELEMENTARY_CHARGE_C,
+    Counts,
+    Model,
+    build_model,
+    draw_counts,
+    nominal_counts,
+)
 from .scenario import Scenario
 
 if TYPE_CHECKING:  # pragma: no cover
@@ -112,6 +119,7 @@ class _Acc:
     group_current_psd: dict = field(default_factory=dict)
     traj: list = field(default_factory=list)  # (index, mean, meansq, batch means, counts)
     quad: list = field(default_factory=list)  # (index, (2, S) quadratures, (2,) current's)
+    charge: float = 0.0  # readout charge passed, all trajectories [C]
     n_events: int = 0
 
 
@@ -260,11 +268,11 @@ def run(
     if readout is not None:
         cur_psd = acc.current_psd / n
         c_low, c_high = spectra.welch_interval(cur_psd, k_total)
-        data["current_mean"] = ((), float(a_e * st_mean[0] + a_h * st_mean[1]))
+        data["current_mean"] = ((), acc.charge / (n * duration))
         data["current_psd"] = (("frequency",), cur_psd)
         data["current_psd_low"] = (("frequency",), c_low)
         data["current_psd_high"] = (("frequency",), c_high)
-        data["current_psd_lna"] = (("frequency",), spectra.current_psd_from_matrix(smat, a_e, a_h))
+        data["current_psd_lna"] = (("frequency",), spectra.readout_psd(smat, ss, readout))
         cgroups = _groups(acc.group_current_psd, group_size)
         cfit = spectra.analyse_spectrum(freqs, cur_psd, c_low, c_high, k_total, batches=cgroups)
         data.update(_fit_vars([cfit], prefix="current_", species_dim=False))
@@ -363,6 +371,12 @@ def _modulation_at(prep: Prepared, t_start: float) -> dict:
                            math.fmod(phase + 2.0 * math.pi * freq * t_start, 2.0 * math.pi))}
 
 
+def _flows_of(prep: Prepared) -> dict:
+    """The engine's ``flow_weight`` argument where the model has collection channels."""
+    w = prep.model.flow_weight
+    return {"flow_weight": w} if np.any(w) else {}
+
+
 class _Joined:
     """A trajectory assembled from time slices (the fields the reductions read)."""
 
@@ -373,6 +387,7 @@ class _Joined:
         self.integ2 = np.sum([p.integ2 for p in parts], axis=0)
         self.events = np.sum([p.events for p in parts], axis=0)
         self.final = parts[-1].final
+        self.flows = np.concatenate([p.flows for p in parts])
 
 
 def _simulate_sliced(simulate_trajectory, prep: Prepared, rng_state: np.ndarray, rs, excess,
@@ -388,7 +403,7 @@ def _simulate_sliced(simulate_trajectory, prep: Prepared, rng_state: np.ndarray,
             raise Cancelled
         x = simulate_trajectory(*prep.arrays, x0=x, rng_state=rng_state, settle_s=0.0,
                                 excess=zero, duration_s=rs.settle_s / plan.settle_slices,
-                                n_samples=1, oversample=1,
+                                n_samples=1, oversample=1, **_flows_of(prep),
                                 **_modulation_at(prep, -rs.settle_s + k * rs.settle_s
                                                  / plan.settle_slices)).final
         tick(1)
@@ -401,12 +416,20 @@ def _simulate_sliced(simulate_trajectory, prep: Prepared, rng_state: np.ndarray,
                                   settle_s=settle_first if k == 0 else 0.0,
                                   excess=excess if k == 0 else zero,
                                   duration_s=rs.duration_s / plan.window_slices, n_samples=n,
-                                  oversample=OVERSAMPLE,
+                                  oversample=OVERSAMPLE, **_flows_of(prep),
                                   **_modulation_at(prep, k * rs.duration_s / plan.window_slices))
         x = res.final
         parts.append(res)
         tick(1 + (k == 0 and plan.settle_slices == 1))
     return parts[0] if len(parts) == 1 else _Joined(parts)
+
+
+def _current_bins(res, dt_fine: float, a_e: float, a_h: float) -> np.ndarray:
+    """The readout current averaged over each fine bin [A]: from the collection events where
+    the engine recorded them (shot noise included), else from the counts."""
+    if res.flows.size:
+        return res.flows * (ELEMENTARY_CHARGE_C / dt_fine)
+    return a_e * res.bins[:, 0] + a_h * res.bins[:, 1]
 
 
 def _reduce_one(acc: _Acc, i: int, res, prep: Prepared, ref: np.ndarray, dt_fine: float,
@@ -429,7 +452,8 @@ def _reduce_one(acc: _Acc, i: int, res, prep: Prepared, ref: np.ndarray, dt_fine
     if group is not None:
         acc.group_psd[group] = acc.group_psd[group] + pxx if group in acc.group_psd else pxx
     if current:
-        i_bins = a_e * res.bins[:, 0] + a_h * res.bins[:, 1]
+        i_bins = _current_bins(res, dt_fine, a_e, a_h)
+        acc.charge += float(i_bins.sum()) * dt_fine
         _, pii = spectra.periodogram(i_bins, dt_fine, oversample=OVERSAMPLE, segments=segments)
         acc.current_psd = pii if acc.current_psd is None else acc.current_psd + pii
         if group is not None:
@@ -438,7 +462,7 @@ def _reduce_one(acc: _Acc, i: int, res, prep: Prepared, ref: np.ndarray, dt_fine
     mod = prep.model.modulation
     if mod is not None:
         q = spectra.drive_quadratures(res.bins, dt_fine, mod[2])
-        qi = (spectra.drive_quadratures(a_e * res.bins[:, 0] + a_h * res.bins[:, 1], dt_fine,
+        qi = (spectra.drive_quadratures(_current_bins(res, dt_fine, a_e, a_h), dt_fine,
                                         mod[2]) if current else None)
         acc.quad.append((i, q, qi))
     batches = np.array([b.mean(axis=0) for b in np.array_split(res.bins, N_BATCHES)])
@@ -489,6 +513,7 @@ def _combine(parts: list[_Acc]) -> _Acc:
             out.current_psd = out.current_psd + p.current_psd
         out.traj.extend(p.traj)
         out.quad.extend(p.quad)
+        out.charge += p.charge
         out.n_events += p.n_events
         for s, h in p.hist.items():
             out.hist[s] = _add_hist(out.hist[s], h)
