@@ -50,6 +50,8 @@ COORDINATES: dict[str, Var] = {
     "count_value": Var(("count_value",), "1", "number of particles in the volume"),
     "component": Var(("component",), "1", "Lorentzian component index"),
     "sweep": Var(("sweep",), "1", "sweep point index"),
+    "noise_frequency": Var(("noise_frequency",), "Hz", "frequency of the per-pixel noise"),
+    "pixel_frequency": Var(("pixel_frequency",), "Hz", "band centre of the pixel spectra"),
 }
 
 _ENS = "realization: mean"
@@ -150,6 +152,21 @@ VARIABLES: dict[str, Var] = {
                                                 "continuum response amplitude of the current"),
     "current_response_phase_continuum": Var((), "rad",
                                             "continuum response phase of the current"),
+    "pixel_current_mean": Var(("realization",), "A", "mean readout current of each pixel"),
+    "pixel_count_mean": Var(("realization",), "1", "mean electron count of each pixel"),
+    "pixel_current_noise": Var(("realization", "noise_frequency"), "A2 Hz-1",
+                               "each pixel's current noise at the chosen frequencies"),
+    "pixel_count_noise": Var(("realization", "noise_frequency"), "Hz-1",
+                             "each pixel's electron-count noise at the chosen frequencies"),
+    "pixel_current_spectrum": Var(("realization", "pixel_frequency"), "A2 Hz-1",
+                                  "each pixel's current spectrum, band-averaged"),
+    "pixel_count_spectrum": Var(("realization", "pixel_frequency"), "Hz-1",
+                                "each pixel's electron-count spectrum, band-averaged"),
+    "worst_pixel": Var(("worst",), "1", "pixels with the most noise at the first frequency"),
+    "fraction_above_threshold": Var(("noise_frequency",), "1",
+                                    "fraction of pixels whose noise exceeds the threshold"),
+    "fraction_above_threshold_stderr": Var(("noise_frequency",), "1",
+                                           "binomial standard error of that fraction"),
     "probability_outside": Var((), "1", "probability mass outside the truncated state space"),
 }
 

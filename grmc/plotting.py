@@ -45,7 +45,7 @@ if TYPE_CHECKING:  # pragma: no cover
     from matplotlib.axes import Axes
 
 __all__ = ["plot_all", "plot_event_rates", "plot_histogram", "plot_psd", "plot_transient",
-           "plot_validity"]
+           "plot_validity", "plot_population", "plot_worst_pixels"]
 
 DPI = 150
 _PANEL = (6.4, 4.3)  # inches per panel
@@ -353,6 +353,85 @@ def plot_event_rates(ds: xr.Dataset, ax: Axes | None = None) -> Axes:
     return ax
 
 
+def _pixel_kind(ds: xr.Dataset) -> str | None:
+    for kind in ("current", "count"):
+        if f"pixel_{kind}_noise" in ds:
+            return kind
+    return None
+
+
+def plot_population(ds: xr.Dataset, which: int | str = "mean", ax: Axes | None = None) -> Axes:
+    """Histogram across pixels of the mean readout (``which="mean"``) or of the noise at the
+    ``which``-th chosen frequency, with the threshold and the fraction above it.
+
+    Parameters
+    ----------
+    ds : xarray.Dataset  A run with a ``[population]`` section
+    which : "mean" or int  Index into ``noise_frequency``
+    ax : matplotlib Axes, optional
+
+    Returns
+    -------
+    Axes
+    """
+    ax = _new_axes(ax)
+    kind = _pixel_kind(ds)
+    if kind is None:
+        return _note(ax, "this file has no pixel population (add a [population] section)")
+    unit = "A" if kind == "current" else "counts"
+    if which == "mean":
+        vals = np.asarray(ds[f"pixel_{kind}_mean"].values, dtype=float)
+        ax.hist(vals, bins=min(40, max(8, vals.size // 8)), color=_MC_COLOR, alpha=0.7)
+        ax.set_xlabel(f"mean {'current' if kind == 'current' else 'electron count'} of a pixel "
+                      f"[{unit}]")
+        sub = "spread of the mean readout across pixels"
+    else:
+        j = int(which)
+        f = float(ds["noise_frequency"].values[j])
+        vals = np.asarray(ds[f"pixel_{kind}_noise"].values[:, j], dtype=float)
+        edges = np.geomspace(vals.min() * 0.9, vals.max() * 1.1, 30)
+        ax.hist(vals, bins=edges, color=_MC_COLOR, alpha=0.7)
+        ax.set_xscale("log")
+        ax.set_xlabel(f"pixel noise at {_si(f, 'Hz')} [{unit}^2/Hz]")
+        sub = f"spread of the noise across pixels at {_si(f, 'Hz')}"
+        thr = ds.attrs.get("population_threshold")
+        if thr is not None and "fraction_above_threshold" in ds:
+            p = float(ds["fraction_above_threshold"].values[j])
+            e = float(ds["fraction_above_threshold_stderr"].values[j])
+            ax.axvline(float(thr), color=_CORNER_COLOR, ls="--",
+                       label=f"threshold: {100 * p:.1f} ± {100 * e:.1f} % of pixels above")
+            ax.legend(fontsize=8)
+    ax.set_ylabel("pixels")
+    head = _title(ds)
+    ax.set_title(f"{head}\n{sub}" if head else sub, fontsize=10)
+    ax.grid(True, alpha=0.3)
+    return ax
+
+
+def plot_worst_pixels(ds: xr.Dataset, ax: Axes | None = None) -> Axes:
+    """Band-averaged spectra of the noisiest pixels beside the population median."""
+    ax = _new_axes(ax)
+    kind = _pixel_kind(ds)
+    if kind is None:
+        return _note(ax, "this file has no pixel population (add a [population] section)")
+    f = np.asarray(ds["pixel_frequency"].values, dtype=float)
+    spec = np.asarray(ds[f"pixel_{kind}_spectrum"].values, dtype=float)
+    ax.loglog(f, np.median(spec, axis=0), color="k", lw=2, label="median pixel")
+    for rank, i in enumerate(np.asarray(ds["worst_pixel"].values, dtype=int)):
+        ax.loglog(f, spec[i], lw=1, color=f"C{rank + 1}", label=f"pixel {i} (rank {rank + 1})")
+    unit = "A^2/Hz" if kind == "current" else "counts^2/Hz"
+    ax.set_xlabel("frequency f [Hz]")
+    ax.set_ylabel(f"band-averaged PSD [{unit}]")
+    f0 = float(ds["noise_frequency"].values[0])
+    ax.axvline(f0, color=_CORNER_COLOR, ls=":", lw=1)
+    head = _title(ds)
+    sub = f"noisiest pixels at {_si(f0, 'Hz')}"
+    ax.set_title(f"{head}\n{sub}" if head else sub, fontsize=10)
+    ax.grid(True, which="both", alpha=0.3)
+    ax.legend(fontsize=7)
+    return ax
+
+
 _DEVIATIONS = {
     "mean": ("deviation_mean", "mean count vs continuum"),
     "var": ("deviation_var", "variance vs linear noise"),
@@ -501,6 +580,16 @@ def plot_all(path_nc: str | os.PathLike[str], outdir: str | os.PathLike[str] | N
         for name, ax in zip(names, axes):
             plot_histogram(ds, name, ax=ax)
         save(fig, "histogram")
+    if _pixel_kind(ds) is not None:
+        n_f = ds.sizes["noise_frequency"]
+        fig, axes = _grid(1 + n_f, (6.4, 4.0))
+        plot_population(ds, "mean", ax=axes[0])
+        for j, ax in enumerate(axes[1:]):
+            plot_population(ds, j, ax=ax)
+        save(fig, "population")
+        fig, (ax,) = _grid(1, (7.2, 4.8))
+        plot_worst_pixels(ds, ax=ax)
+        save(fig, "worst_pixels")
     if "event_rate" in ds:
         n_ch = ds.sizes.get("channel", 1)
         fig, (ax,) = _grid(1, (8.0, 1.3 + 0.3 * n_ch))

@@ -172,6 +172,22 @@ class Start:
 
 
 @dataclass(frozen=True)
+class Population:
+    """Pixel-population analysis (each trajectory is one pixel; useful with
+    ``dopants = "poisson"``).
+
+    Attributes
+    ----------
+    frequencies_Hz : tuple of float  Frequencies at which each pixel's noise is reported [Hz]
+    threshold : float or None  Noise level to count pixels above, in the readout quantity's
+        PSD units (A^2/Hz with a [readout], else counts^2/Hz) [unit^2/Hz]
+    """
+
+    frequencies_Hz: tuple[float, ...] = ()
+    threshold: float | None = None
+
+
+@dataclass(frozen=True)
 class RunSettings:
     """Ensemble settings.
 
@@ -247,6 +263,7 @@ class Scenario:
     start: Start = field(default_factory=Start)
     run: RunSettings = field(default_factory=RunSettings)
     readout: Readout | None = None
+    population: Population | None = None
     notes: str = ""
     source: str = "<string>"
     text: str = ""
@@ -281,7 +298,8 @@ _I = lambda **kw: _Key("int", **kw)  # noqa: E731
 _S = lambda **kw: _Key("str", **kw)  # noqa: E731
 
 _TOP = {"title": _S(required=True), "notes": _S(default="")}
-_SECTIONS_ALLOWED = ("material", "volume", "traps", "light", "start", "run", "readout")
+_SECTIONS_ALLOWED = ("material", "volume", "traps", "light", "start", "run", "readout",
+                     "population")
 
 _MATERIAL = {
     "temperature_K": _F(required=True, lo=0.0, lo_open=True),
@@ -325,6 +343,10 @@ _RUN = {
     "seed": _I(default=1, lo=0),
     "dopants": _S(default="rounded", choices=("rounded", "poisson")),
 }
+_POPULATION = {
+    "frequencies_Hz": _Key("floatlist", required=True, lo=0.0, lo_open=True),
+    "threshold": _F(lo=0.0, lo_open=True),
+}
 _READOUT = {
     "bias_V": _F(required=True),
     "length_cm": _F(required=True, lo=0.0, lo_open=True),
@@ -342,6 +364,7 @@ SCHEMA: dict[str, dict[str, _Key]] = {
     "start": _START,
     "run": _RUN,
     "readout": _READOUT,
+    "population": _POPULATION,
 }
 
 
@@ -379,6 +402,17 @@ def _check_value(src: str, section: str, key: str, value: Any, spec: _Key) -> An
         if spec.pattern and not re.match(spec.pattern, value):
             fail(f"{value!r} may hold only letters, digits, '_' and '-'")
         return value
+    elif spec.kind == "floatlist":
+        if not isinstance(value, list) or not value:
+            fail(f"expected a non-empty list of numbers, got {value!r}")
+        out = []
+        for v in value:
+            if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v):
+                fail(f"expected numbers, got {v!r}")
+            if v <= 0:
+                fail(f"every value must be > 0, got {v!r}")
+            out.append(float(v))
+        return tuple(sorted(out))
     elif spec.kind == "list3":
         if not isinstance(value, list) or len(value) != 3:
             fail(f"expected a list of three edge lengths, got {value!r}")
@@ -582,6 +616,10 @@ def parse_scenario(data: dict[str, Any], *, source: str = "<string>", text: str 
         readout = Readout(**_read_table(src, "readout", data["readout"], _READOUT))
     _check_channels(src, material, light, traps,
                     collecting=readout is not None and readout.collection == "events")
+    population = None
+    if "population" in data:
+        population = Population(**_read_table(src, "population", data["population"],
+                                              _POPULATION))
     return Scenario(
         title=top["title"],
         notes=top["notes"],
@@ -592,6 +630,7 @@ def parse_scenario(data: dict[str, Any], *, source: str = "<string>", text: str 
         start=start,
         run=run,
         readout=readout,
+        population=population,
         source=source,
         text=text,
     )

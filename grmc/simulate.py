@@ -18,7 +18,7 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
-from . import continuum, spectra
+from . import continuum, population, spectra
 from .dataset import finish
 from .engine.ensemble import Cancelled, chunk_bounds, map_chunks
 from .model import (
@@ -120,6 +120,7 @@ class _Acc:
     traj: list = field(default_factory=list)  # (index, mean, meansq, batch means, counts)
     quad: list = field(default_factory=list)  # (index, (2, S) quadratures, (2,) current's)
     charge: float = 0.0  # readout charge passed, all trajectories [C]
+    pixels: list = field(default_factory=list)  # (index, mean readout, banded spectrum)
     n_events: int = 0
 
 
@@ -183,6 +184,10 @@ def run(
     a_e, a_h = spectra.current_scale(readout) if readout is not None else (0.0, 0.0)
 
     plan = _slice_plan(base, rs)
+    bands = None
+    if scenario.population is not None:
+        bands = population.pixel_bands(spectra.periodogram_frequencies(
+            n_samples, duration, segments=segments, oversample=OVERSAMPLE))
     n_groups = _jackknife_groups(n_traj)
     group_size = n_traj // n_groups if n_groups else 0
 
@@ -199,7 +204,8 @@ def run(
                                    stream_state(rs.seed, i, purpose=PURPOSE_ENGINE), rs,
                                    excess, plan, cancel, tick)
             _reduce_one(acc, i, res, prep, ref, dt_fine, segments, a_e, a_h, len(names),
-                        readout is not None, None if n_groups is None else i // group_size)
+                        readout is not None, None if n_groups is None else i // group_size,
+                        bands)
         return acc
 
     t0 = time.perf_counter()
@@ -303,6 +309,12 @@ def run(
             coords["trap_level"] = ("trap_level",
                                     np.array([tr.label for tr in scenario.traps], dtype=object))
 
+    if bands is not None:
+        pdata, pcoords = _population_vars(acc, bands, scenario.population,
+                                          readout is not None)
+        data.update(pdata)
+        coords.update(pcoords)
+
     ds = xr.Dataset(data, coords=coords)
     attrs = {
         "seed": int(rs.seed),
@@ -321,6 +333,9 @@ def run(
         "donors_nominal": int(counts0.donors),
         "acceptors_nominal": int(counts0.acceptors),
         "conserved_charge": int(model0.charge),
+        "population_threshold": (float(scenario.population.threshold)
+                                 if scenario.population and scenario.population.threshold
+                                 else None),
     }
     if readout is not None:
         attrs.update({
@@ -434,7 +449,7 @@ def _current_bins(res, dt_fine: float, a_e: float, a_h: float) -> np.ndarray:
 
 def _reduce_one(acc: _Acc, i: int, res, prep: Prepared, ref: np.ndarray, dt_fine: float,
                 segments: int, a_e: float, a_h: float, n_channels: int, current: bool,
-                group: int | None) -> None:
+                group: int | None, bands=None) -> None:
     """Fold one trajectory into a chunk's reductions."""
     x = res.samples.astype(np.float64) - ref
     duration = dt_fine * res.bins.shape[0]
@@ -459,6 +474,11 @@ def _reduce_one(acc: _Acc, i: int, res, prep: Prepared, ref: np.ndarray, dt_fine
         if group is not None:
             acc.group_current_psd[group] = (acc.group_current_psd[group] + pii
                                             if group in acc.group_current_psd else pii)
+    if bands is not None:  # the pixel's own readout: mean and banded spectrum
+        if current:
+            acc.pixels.append((i, float(i_bins.mean()), bands.average(pii)))
+        else:
+            acc.pixels.append((i, float(res.bins[:, 0].mean()), bands.average(pxx[0])))
     mod = prep.model.modulation
     if mod is not None:
         q = spectra.drive_quadratures(res.bins, dt_fine, mod[2])
@@ -496,7 +516,7 @@ def _combine(parts: list[_Acc]) -> _Acc:
             continue
         if out.n == 0:
             out = dataclasses.replace(p, traj=list(p.traj), hist=dict(p.hist),
-                                      quad=list(p.quad),
+                                      quad=list(p.quad), pixels=list(p.pixels),
                                       group_psd=dict(p.group_psd),
                                       group_current_psd=dict(p.group_current_psd))
             continue
@@ -514,6 +534,7 @@ def _combine(parts: list[_Acc]) -> _Acc:
         out.traj.extend(p.traj)
         out.quad.extend(p.quad)
         out.charge += p.charge
+        out.pixels.extend(p.pixels)
         out.n_events += p.n_events
         for s, h in p.hist.items():
             out.hist[s] = _add_hist(out.hist[s], h)
@@ -580,6 +601,29 @@ def _response_vars(acc: _Acc, model: Model, current: bool, a_e: float, a_h: floa
             "current_response_phase_continuum": ((), float(np.angle(i_c))),
         })
     return out
+
+
+def _population_vars(acc: _Acc, bands, pop, current: bool) -> tuple[dict, dict]:
+    """Per-pixel mean readout and noise, the fraction above the threshold, worst pixels."""
+    acc.pixels.sort(key=lambda row: row[0])
+    means = np.array([row[1] for row in acc.pixels])
+    spectra_ = np.array([row[2] for row in acc.pixels])
+    freqs = np.asarray(pop.frequencies_Hz, dtype=float)
+    noise = bands.at(spectra_, freqs)
+    kind = "current" if current else "count"
+    data = {
+        f"pixel_{kind}_mean": (("realization",), means),
+        f"pixel_{kind}_noise": (("realization", "noise_frequency"), noise),
+        f"pixel_{kind}_spectrum": (("realization", "pixel_frequency"), spectra_),
+        "worst_pixel": (("worst",), population.worst_pixels(noise[:, 0])),
+    }
+    if pop.threshold is not None:
+        frac, err = population.threshold_fraction(noise, pop.threshold)
+        data["fraction_above_threshold"] = (("noise_frequency",), frac)
+        data["fraction_above_threshold_stderr"] = (("noise_frequency",), err)
+    coords = {"noise_frequency": ("noise_frequency", freqs),
+              "pixel_frequency": ("pixel_frequency", bands.centres)}
+    return data, coords
 
 
 def _jackknife_groups(n_traj: int) -> int | None:

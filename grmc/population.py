@@ -1,0 +1,84 @@
+"""Pixel populations: each trajectory is one pixel of an array.
+
+With ``dopants = "poisson"`` every pixel draws its own dopant and trap counts, so the spread of
+the pixels' mean readout and noise is the device-to-device spread a designer must plan for
+("what fraction of my pixels is noisier than my read noise?").  Per pixel, the periodogram of
+the readout quantity (the current with a ``[readout]``, else the electron count) is averaged
+over logarithmic bands of :data:`BANDS_PER_DECADE` per decade, which keeps 2 m degrees of
+freedom per band of m periodogram bins (Welch, IEEE Trans. Audio Electroacoust. 15, 70,
+1967); a pixel's noise at a chosen frequency is read from its banded spectrum (interpolation
+linear in the values between band centres in log f, which keeps it unbiased).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+__all__ = ["BANDS_PER_DECADE", "PixelBands", "pixel_bands", "threshold_fraction",
+           "worst_pixels"]
+
+BANDS_PER_DECADE = 6
+
+
+@dataclass(frozen=True)
+class PixelBands:
+    """Logarithmic bands over the periodogram's frequency grid.
+
+    Attributes
+    ----------
+    index : ndarray (n_freq,)  Band of each periodogram frequency
+    centres : ndarray (n_bands,)  Geometric centre of each band's frequencies [Hz]
+    counts : ndarray (n_bands,)  Periodogram bins in each band
+    """
+
+    index: np.ndarray
+    centres: np.ndarray
+    counts: np.ndarray
+
+    def average(self, psd: np.ndarray) -> np.ndarray:
+        """Band averages of one periodogram (n_freq,) -> (n_bands,)."""
+        return np.bincount(self.index, weights=psd, minlength=self.counts.size) / self.counts
+
+    def at(self, banded: np.ndarray, freqs: np.ndarray) -> np.ndarray:
+        """Banded spectra (..., n_bands) at frequencies [Hz]: interpolation linear in the
+        values and in log f, so that it is unbiased (a linear operation commutes with the
+        expectation; a log-log interpolation of noisy values would not)."""
+        lf, lc = np.log(np.asarray(freqs, dtype=float)), np.log(self.centres)
+        flat = np.reshape(banded, (-1, self.centres.size))
+        out = np.array([np.interp(lf, lc, row) for row in flat])
+        return out.reshape(np.shape(banded)[:-1] + (len(lf),))
+
+
+def pixel_bands(freqs: np.ndarray) -> PixelBands:
+    """Bands of :data:`BANDS_PER_DECADE` per decade covering ``freqs`` (empty bands merged)."""
+    f = np.asarray(freqs, dtype=float)
+    raw = np.floor(np.log10(f / f[0]) * BANDS_PER_DECADE + 1e-9).astype(np.int64)
+    _, index = np.unique(raw, return_inverse=True)
+    counts = np.bincount(index)
+    centres = np.exp(np.bincount(index, weights=np.log(f)) / counts)
+    return PixelBands(index=index, centres=centres, counts=counts)
+
+
+def threshold_fraction(noise: np.ndarray, threshold: float) -> tuple[np.ndarray, np.ndarray]:
+    """Fraction of pixels whose noise exceeds ``threshold`` and its binomial standard error.
+
+    Parameters
+    ----------
+    noise : ndarray (pixels, frequencies)  [unit^2/Hz]
+    threshold : float  [unit^2/Hz]
+
+    Returns
+    -------
+    fraction, stderr : ndarray (frequencies,)  sqrt(p (1 - p) / n) (common practice)
+    """
+    above = np.asarray(noise) > threshold
+    p = above.mean(axis=0)
+    return p, np.sqrt(p * (1.0 - p) / max(above.shape[0], 1))
+
+
+def worst_pixels(noise_at_first: np.ndarray, n: int = 5) -> np.ndarray:
+    """Indices of the ``n`` noisiest pixels at the first chosen frequency, noisiest first."""
+    order = np.argsort(noise_at_first, kind="stable")[::-1]
+    return order[:min(n, len(order))]
