@@ -167,6 +167,12 @@ VARIABLES: dict[str, Var] = {
                                     "fraction of pixels whose noise exceeds the threshold"),
     "fraction_above_threshold_stderr": Var(("noise_frequency",), "1",
                                            "binomial standard error of that fraction"),
+    "single_trap_share": Var(("realization", "noise_frequency"), "1",
+                             "largest share of a pixel's readout noise added by one single trap"),
+    "telegraph_fraction": Var(("noise_frequency",), "1",
+                              "fraction of pixels whose noise one single trap dominates"),
+    "telegraph_fraction_stderr": Var(("noise_frequency",), "1",
+                                     "binomial standard error of telegraph_fraction"),
     "probability_outside": Var((), "1", "probability mass outside the truncated state space"),
 }
 

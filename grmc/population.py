@@ -16,8 +16,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-__all__ = ["BANDS_PER_DECADE", "PixelBands", "pixel_bands", "threshold_fraction",
-           "worst_pixels"]
+__all__ = ["BANDS_PER_DECADE", "PixelBands", "pixel_bands", "single_trap_share",
+           "threshold_fraction", "worst_pixels"]
 
 BANDS_PER_DECADE = 6
 
@@ -82,3 +82,51 @@ def worst_pixels(noise_at_first: np.ndarray, n: int = 5) -> np.ndarray:
     """Indices of the ``n`` noisiest pixels at the first chosen frequency, noisiest first."""
     order = np.argsort(noise_at_first, kind="stable")[::-1]
     return order[:min(n, len(order))]
+
+
+def single_trap_share(model, freqs: np.ndarray, *, readout=None) -> float:
+    """Largest share of the readout noise that one single trap adds, at each frequency.
+
+    For every trap level holding exactly one trap, the linear-noise spectrum of the readout
+    quantity (the current with a ``readout``, else the electron count) is compared with that
+    of the same pixel without this trap: ``share = 1 - S_without / S_with``.  A pixel whose
+    share exceeds one half is one whose spectrum a single trap dominates (telegraph-like:
+    one trap switching between filled and empty; Machlup, J. Appl. Phys. 25, 341, 1954).  For
+    one trap the two-state chain is linear in its occupancy, so the linear-noise spectrum of
+    the trap itself is exact.
+
+    Parameters
+    ----------
+    model : Model  One pixel's model (its own trap counts)
+    freqs : ndarray  Frequencies [Hz]
+    readout : Readout, optional
+
+    Returns
+    -------
+    ndarray (len(freqs),)  The largest share over single-trap levels (0 where there is none)
+    """
+    import dataclasses
+
+    from . import continuum, spectra
+    from .model import build_model
+
+    def readout_spectrum(m) -> np.ndarray:
+        smat = continuum.lna_psd(m, freqs)
+        if readout is not None:
+            return spectra.readout_psd(smat, continuum.steady_state(m), readout)
+        return np.real(smat[0, 0])
+
+    share = np.zeros(len(freqs))
+    singles = [k for k, t in enumerate(model.counts.traps) if t == 1]
+    if not singles:
+        return share
+    full = readout_spectrum(model)
+    for k in singles:
+        traps = list(model.counts.traps)
+        traps[k] = 0
+        without = readout_spectrum(build_model(model.scenario,
+                                               counts=dataclasses.replace(model.counts,
+                                                                          traps=tuple(traps))))
+        with np.errstate(divide="ignore", invalid="ignore"):
+            share = np.maximum(share, np.clip(1.0 - without / full, 0.0, 1.0))
+    return share

@@ -310,8 +310,7 @@ def run(
                                     np.array([tr.label for tr in scenario.traps], dtype=object))
 
     if bands is not None:
-        pdata, pcoords = _population_vars(acc, bands, scenario.population,
-                                          readout is not None)
+        pdata, pcoords = _population_vars(acc, bands, scenario, readout)
         data.update(pdata)
         coords.update(pcoords)
 
@@ -603,8 +602,9 @@ def _response_vars(acc: _Acc, model: Model, current: bool, a_e: float, a_h: floa
     return out
 
 
-def _population_vars(acc: _Acc, bands, pop, current: bool) -> tuple[dict, dict]:
+def _population_vars(acc: _Acc, bands, scenario: Scenario, readout) -> tuple[dict, dict]:
     """Per-pixel mean readout and noise, the fraction above the threshold, worst pixels."""
+    pop, current = scenario.population, readout is not None
     acc.pixels.sort(key=lambda row: row[0])
     means = np.array([row[1] for row in acc.pixels])
     spectra_ = np.array([row[2] for row in acc.pixels])
@@ -617,6 +617,20 @@ def _population_vars(acc: _Acc, bands, pop, current: bool) -> tuple[dict, dict]:
         f"pixel_{kind}_spectrum": (("realization", "pixel_frequency"), spectra_),
         "worst_pixel": (("worst",), population.worst_pixels(noise[:, 0])),
     }
+    # telegraph-like pixels: one single trap adds more than half of the readout noise
+    shares: dict = {}
+    share = np.empty_like(noise)
+    for row, pix in enumerate(acc.traj):
+        counts = pix[4]
+        if counts not in shares:
+            model = build_model(scenario, counts=counts)
+            shares[counts] = population.single_trap_share(model, freqs, readout=readout)
+        share[row] = shares[counts]
+    telegraph = share > 0.5
+    data["single_trap_share"] = (("realization", "noise_frequency"), share)
+    data["telegraph_fraction"] = (("noise_frequency",), telegraph.mean(axis=0))
+    data["telegraph_fraction_stderr"] = (("noise_frequency",), np.sqrt(
+        telegraph.mean(axis=0) * (1 - telegraph.mean(axis=0)) / len(telegraph)))
     if pop.threshold is not None:
         frac, err = population.threshold_fraction(noise, pop.threshold)
         data["fraction_above_threshold"] = (("noise_frequency",), frac)

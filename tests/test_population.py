@@ -64,3 +64,46 @@ def test_pixel_noise_is_unbiased_and_fraction_consistent():
     worst = ds["worst_pixel"].values
     assert worst[0] == int(np.argmax(noise[:, 0]))
     assert np.all(np.diff(noise[worst, 0]) <= 0)
+
+
+TELEGRAPH = """
+title = "n-type pixels with on average one trap each"
+[material]
+temperature_K = 300.0
+intrinsic_density_cm3 = 1.0e6
+radiative_cm3_s = 1.0e-12
+donors_cm3 = 1.0e17
+[volume]
+volume_cm3 = 1.0e-14
+[[traps]]
+label = "rts"
+density_cm3 = 1.0e14
+energy_eV = 0.3
+kind = "acceptor"
+electron_capture_cm3_s = 1.0e-9
+hole_capture_cm3_s = 1.0e-9
+[population]
+frequencies_Hz = [1.0e3]
+[run]
+trajectories = 240
+duration_s = 1.0e-4
+samples = 256
+seed = 43
+dopants = "poisson"
+"""
+
+
+def test_telegraph_fraction_follows_the_poisson_law_of_single_traps():
+    """In n-type pixels whose only electron-number noise comes from their traps, a pixel's
+    noise is dominated by one trap exactly when it holds one trap, so the telegraph-like
+    fraction equals the fraction of pixels with one trap, and that follows the Poisson law
+    lambda exp(-lambda) of the mean count per pixel lambda = 1 (common practice for random
+    dopant and defect counts), within 4 binomial standard errors."""
+    ds = grmc.run(grmc.load_scenario(text=TELEGRAPH), workers=2, progress=False)
+    counts = ds["trap_count"].values[:, 0]
+    telegraph = ds["single_trap_share"].values[:, 0] > 0.5
+    np.testing.assert_array_equal(telegraph, counts == 1)
+    frac = float(ds["telegraph_fraction"].values[0])
+    lam = 1.0e14 * 1.0e-14
+    p = lam * math.exp(-lam)
+    assert abs(frac - p) < 4 * math.sqrt(p * (1 - p) / counts.size)
