@@ -95,6 +95,14 @@ def format_run_table(ds) -> str:
                       float(ds["response_phase_continuum"][i]))
             lines.append(f"    {str(s):<20}{_g(a, 4)} ± {_g(ae, 2)} (continuum {_g(ca, 4)}), "
                          f"{_g(p, 3)} ± {_g(pe, 2)} rad (continuum {_g(cp, 3)})")
+        if "current_response_amplitude" in ds:
+            lines.append(
+                f"    {'current':<20}{_g(float(ds['current_response_amplitude']), 4)} ± "
+                f"{_g(float(ds['current_response_amplitude_stderr']), 2)} A (continuum "
+                f"{_g(float(ds['current_response_amplitude_continuum']), 4)}), "
+                f"{_g(float(ds['current_response_phase']), 3)} ± "
+                f"{_g(float(ds['current_response_phase_stderr']), 2)} rad (continuum "
+                f"{_g(float(ds['current_response_phase_continuum']), 3)})")
     if "current_mean" in ds:
         i_mean = float(ds["current_mean"])
         lines.append(f"  current: mean {_g(i_mean, 5)} A")
@@ -110,6 +118,22 @@ def format_run_table(ds) -> str:
                              f"± {_g(fce, 2)} Hz")
             if str(ds["current_spectrum_kind"].values) == "unresolved":
                 lines.append("           no corner resolved in the current spectrum")
+    for kind, unit in (("current", "A"), ("count", "counts")):
+        if f"pixel_{kind}_noise" not in ds:
+            continue
+        means = ds[f"pixel_{kind}_mean"].values
+        lines.append(f"  population of {means.size} pixels: mean readout {_g(means.mean(), 4)} "
+                     f"{unit}, spread (std) {_g(means.std(ddof=1), 3)} {unit}")
+        for j, f in enumerate(ds["noise_frequency"].values):
+            noise = ds[f"pixel_{kind}_noise"].values[:, j]
+            text = (f"    at {_g(f, 3)} Hz: median noise {_g(np.median(noise), 3)} {unit}^2/Hz, "
+                    f"90th percentile {_g(np.percentile(noise, 90), 3)}")
+            if "fraction_above_threshold" in ds:
+                text += (f"; above threshold {100 * float(ds['fraction_above_threshold'][j]):.1f}"
+                         f" ± {100 * float(ds['fraction_above_threshold_stderr'][j]):.1f} %")
+            text += (f"; telegraph-like {100 * float(ds['telegraph_fraction'][j]):.1f} ± "
+                     f"{100 * float(ds['telegraph_fraction_stderr'][j]):.1f} %")
+            lines.append(text)
     if "events_total" in ds.attrs and ds.attrs.get("wall_time_s", 0) > 0:
         ev = int(ds.attrs["events_total"])
         wall = float(ds.attrs["wall_time_s"])

@@ -280,7 +280,19 @@ def run(
         data["current_psd_high"] = (("frequency",), c_high)
         data["current_psd_lna"] = (("frequency",), spectra.readout_psd(smat, ss, readout))
         cgroups = _groups(acc.group_current_psd, group_size)
-        cfit = spectra.analyse_spectrum(freqs, cur_psd, c_low, c_high, k_total, batches=cgroups)
+        # with collection events the spectrum sits on the white shot noise 2 q I of the
+        # collection: the Lorentzian analysis is of the G-R part above it
+        shot = (spectra.shot_noise_psd(acc.charge / (n * duration))
+                if readout.collection == "events" else 0.0)
+        if readout.collection == "events":
+            data["current_shot_noise"] = ((), float(shot))
+        band = None
+        if readout.collection == "events":  # fit where the G-R part stands above the shot floor
+            above = freqs[(data["current_psd_lna"][1] - shot) > 2.0 * shot]
+            band = (freqs[0], above.max()) if above.size else None
+        cfit = spectra.analyse_spectrum(freqs, cur_psd - shot, c_low - shot, c_high - shot,
+                                        k_total, band=band, batches=None if cgroups is None
+                                        else cgroups - shot)
         data.update(_fit_vars([cfit], prefix="current_", species_dim=False))
 
     if model0.modulation is not None:
