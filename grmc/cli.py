@@ -52,6 +52,13 @@ def _command_line(argv: list[str] | None) -> str:
     return " ".join(["grmc", *(shlex.quote(a) for a in args)])
 
 
+def _existing_file(name: str) -> Path:
+    path = Path(name)
+    if not path.is_file():
+        raise UsageError(f"{path}: no such file")
+    return path
+
+
 def _default_output(scenario_path: str, suffix: str = "") -> Path:
     return Path("outputs") / f"{Path(scenario_path).stem}{suffix}.nc"
 
@@ -88,9 +95,7 @@ def cmd_run(args) -> int:
 def cmd_plot(args) -> int:
     from .plotting import plot_all
 
-    path = Path(args.file)
-    if not path.is_file():
-        raise UsageError(f"{path}: no such file")
+    path = _existing_file(args.file)
     outdir = Path(args.output) if args.output else path.parent
     for p in plot_all(path, outdir):
         print(f"wrote {p}")
@@ -101,9 +106,7 @@ def cmd_export(args) -> int:
     from .dataset import load
     from .export import export_csv, export_verilog_a
 
-    path = Path(args.file)
-    if not path.is_file():
-        raise UsageError(f"{path}: no such file")
+    path = _existing_file(args.file)
     ds = load(path)
     quantity = args.quantity
     if quantity is not None and quantity != "current":

@@ -322,7 +322,7 @@ def run(
                                     np.array([tr.label for tr in scenario.traps], dtype=object))
 
     if bands is not None:
-        pdata, pcoords = _population_vars(acc, bands, scenario, readout)
+        pdata, pcoords = _population_vars(acc, bands, scenario, readout, cache)
         data.update(pdata)
         coords.update(pcoords)
 
@@ -614,7 +614,8 @@ def _response_vars(acc: _Acc, model: Model, current: bool, a_e: float, a_h: floa
     return out
 
 
-def _population_vars(acc: _Acc, bands, scenario: Scenario, readout) -> tuple[dict, dict]:
+def _population_vars(acc: _Acc, bands, scenario: Scenario, readout, cache: _ModelCache
+                     ) -> tuple[dict, dict]:
     """Per-pixel mean readout and noise, the fraction above the threshold, worst pixels."""
     pop, current = scenario.population, readout is not None
     acc.pixels.sort(key=lambda row: row[0])
@@ -634,9 +635,9 @@ def _population_vars(acc: _Acc, bands, scenario: Scenario, readout) -> tuple[dic
     share = np.empty_like(noise)
     for row, pix in enumerate(acc.traj):
         counts = pix[4]
-        if counts not in shares:
-            model = build_model(scenario, counts=counts)
-            shares[counts] = population.single_trap_share(model, freqs, readout=readout)
+        if counts not in shares:  # one linear-noise analysis per distinct device
+            shares[counts] = population.single_trap_share(cache.get(counts).model, freqs,
+                                                          readout=readout)
         share[row] = shares[counts]
     telegraph = share > 0.5
     data["single_trap_share"] = (("realization", "noise_frequency"), share)

@@ -11,6 +11,7 @@ from __future__ import annotations
 import math
 
 import numpy as np
+from birth_death import birth_death_box
 
 import grmc
 from grmc.model import ELEMENTARY_CHARGE_C as Q
@@ -68,17 +69,7 @@ def test_photoconductive_gain():
     replaced at the contacts with transit time t_tr: S_I = 2 q I + 4 q G I / (1 + (2 pi f
     tau)^2) with gain G = tau / t_tr (photoconductor G-R noise: van Vliet, Proc. IRE 46,
     1004, 1958, from memory; shot noise: Schottky 1918)."""
-    text = """
-title = "photoconductor with collection events"
-[material]
-temperature_K = 300.0
-intrinsic_density_cm3 = 1.0e6
-radiative_cm3_s = 1.0e-16
-acceptors_cm3 = 1.0e20
-[volume]
-volume_cm3 = 1.0e-15
-[light]
-generation_cm3_s = 1.0e20
+    text = birth_death_box(title="photoconductor with collection events", more="""
 [readout]
 bias_V = 0.1
 length_cm = 1.0e-2
@@ -91,7 +82,7 @@ duration_s = 2.0e-2
 samples = 4096
 settle_s = 5.0e-4
 seed = 32
-"""
+""")
     ds = grmc.run(grmc.load_scenario(text=text), workers=2, progress=False)
     n0 = float(ds["steady_continuum"].sel(species="electrons"))  # g / k = 10 electrons
     tau = 1.0 / (1.0e-16 * float(ds["steady_continuum"].sel(species="holes")) / 1.0e-15)

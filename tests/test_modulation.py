@@ -7,6 +7,7 @@ import math
 
 import numpy as np
 import pytest
+from birth_death import birth_death_box
 
 import grmc
 from grmc import continuum, spectra
@@ -16,29 +17,18 @@ Z = 4.0  # z-score bound (two-sided p = 6e-5 per check), fixed seeds
 
 
 def birth_death(waveform: str, *, freq=2.0e3, depth=0.5, trajectories=64, seed=9) -> str:
-    # electrons in a heavily p-type box: generation G V (modulated), first-order loss
-    # k = B N_h / V = 1e-16 * 1e5 / 1e-15 = 1e4 /s; mean g/k = 10 electrons
-    return f"""
-title = "modulated birth-death"
-[material]
-temperature_K = 300.0
-intrinsic_density_cm3 = 1.0e6
-radiative_cm3_s = 1.0e-16
-acceptors_cm3 = 1.0e20
-[volume]
-volume_cm3 = 1.0e-15
-[light]
-generation_cm3_s = 1.0e20
+    # the shared birth-death box (tests/birth_death.py): k ~ 1e4 /s, mean g/k = 10 electrons
+    return birth_death_box(title="modulated birth-death", light=f"""
 waveform = "{waveform}"
 modulation_frequency_Hz = {freq}
-modulation_depth = {depth}
+modulation_depth = {depth}""", more=f"""
 [run]
 trajectories = {trajectories}
 duration_s = 5.0e-3
 samples = 1024
 settle_s = 1.0e-3
 seed = {seed}
-"""
+""")
 
 
 def test_scenario_rules():

@@ -5,21 +5,12 @@ from __future__ import annotations
 import math
 
 import numpy as np
+from birth_death import birth_death_box
 
 import grmc
 from grmc import population, spectra
 
-BD = """
-title = "identical pixels: birth-death electrons"
-[material]
-temperature_K = 300.0
-intrinsic_density_cm3 = 1.0e6
-radiative_cm3_s = 1.0e-16
-acceptors_cm3 = 1.0e20
-[volume]
-volume_cm3 = 1.0e-15
-[light]
-generation_cm3_s = 1.0e20
+BD = birth_death_box(title="identical pixels: birth-death electrons", more="""
 [population]
 frequencies_Hz = [300.0, 3000.0]
 threshold = 1.0e-3
@@ -29,7 +20,7 @@ duration_s = 1.0e-2
 samples = 1024
 settle_s = 5.0e-4
 seed = 41
-"""
+""")
 
 
 def test_bands_average_and_interpolate():

@@ -12,6 +12,7 @@ import math
 
 import numpy as np
 import pytest
+from birth_death import birth_death_box
 from scipy import stats
 
 import grmc
@@ -25,27 +26,14 @@ def _scenario(text: str) -> grmc.Scenario:
 
 
 def birth_death_text(trajectories=64, duration=5.0e-3, seed=3):
-    # Electrons in a heavily p-type box with radiative recombination only: the loss rate
-    # B N_h N_e / V is first order in N_e because N_h = A + N_e ~ A = 1e5 >> <N_e> ~ 10.
-    # Thermal + optical generation are constant: a linear birth-death process.
-    return f"""
-title = "birth-death"
-[material]
-temperature_K = 300.0
-intrinsic_density_cm3 = 1.0e6
-radiative_cm3_s = 1.0e-16
-acceptors_cm3 = 1.0e20
-[volume]
-volume_cm3 = 1.0e-15
-[light]
-generation_cm3_s = 1.0e20
+    return birth_death_box(more=f"""
 [run]
 trajectories = {trajectories}
 duration_s = {duration}
 samples = 512
 settle_s = 5.0e-4
 seed = {seed}
-"""
+""")
 
 
 def test_birth_death_is_poisson():
