@@ -28,7 +28,24 @@ impact generation by h         C_p n_i^2 N_h                     e+1, h+1
 <k>: electron emission         c_n n_1 M_k                       e+1, M_k-1
 <k>: hole capture              c_p N_h M_k / V                   h-1, M_k-1
 <k>: hole emission             c_p p_1 (T_k - M_k)               h+1, M_k+1
+electrons collected            N_e / t_n                         none (flow 1)
+holes collected                N_h / t_p                         none (flow 1)
+<c> swept out                  N_c / t_x                         e-1, h-1
+<c> from reservoir             c_r V / t_x                       e+1, h+1
 =============================  ================================  ==============
+
+The last four are the open volume, two alternatives:
+
+* a photoconductor bar (``[readout] collection = "events"``, no ``[reservoir]``): a carrier
+  reaching its collecting contact is one collected carrier (flow 1); the ohmic contacts
+  replace it, so the counts (and neutrality) do not change;
+* a volume open to a neighbouring region (``[reservoir]``): the kind ``c`` it names (the
+  minority kind) leaves at ``N_c / t_x`` and enters at ``c_r V / t_x`` (``c_r`` the
+  region's density), and the ohmic contact keeps the volume neutral by withdrawing or
+  supplying a carrier of the other kind at once, so each exchange moves a pair.  With
+  collection events the boundary to the region is the collecting one (a junction): a
+  carrier swept out is collected (flow +1), one entering crosses it the other way (flow -1);
+  the majority carriers only keep the volume neutral and add no collection of their own.
 
 with n_1 = n_i exp(E_t / kT) and p_1 = n_i exp(-E_t / kT).  A channel whose coefficient is
 zero is absent.  Every channel keeps the charge
@@ -50,7 +67,7 @@ from functools import cached_property
 
 import numpy as np
 
-from .scenario import Scenario
+from .scenario import Scenario, ScenarioError
 
 __all__ = [
     "BOLTZMANN_EV_K",
@@ -459,7 +476,8 @@ class Model:
         ]
 
 
-def build_model(scenario: Scenario, *, counts: Counts | None = None) -> Model:
+def build_model(scenario: Scenario, *, counts: Counts | None = None,
+                check_type: bool = True) -> Model:
     """Build the model of a scenario.
 
     Parameters
@@ -467,6 +485,14 @@ def build_model(scenario: Scenario, *, counts: Counts | None = None) -> Model:
     scenario : Scenario
     counts : Counts, optional
         Dopant and trap counts; default :func:`nominal_counts` (rounded densities).
+    check_type : bool
+        Refuse a ``[reservoir]`` exchange in a volume without a definite type (default);
+        False only to list the channel names of a population.
+
+    Raises
+    ------
+    ScenarioError
+        ``[reservoir] carrier`` when the exchanged kind could outnumber the other.
 
     Returns
     -------
@@ -524,14 +550,29 @@ def build_model(scenario: Scenario, *, counts: Counts | None = None) -> Model:
         add(f"{lab}: hole emission", cp * p1, (empty,), ((H, +1), (M, +1)),
             f"{lab}: hole capture")
     readout = scenario.readout
-    if readout is not None and readout.collection == "events":
-        # ohmic contacts: a carrier drifting out through its collecting contact is replaced
-        # through the other one, so the counts (and neutrality) are unchanged; the event is
-        # one collected carrier of the readout current
+    reservoir = scenario.reservoir
+    events = readout is not None and readout.collection == "events"
+    exchanged = None if reservoir is None else reservoir.carrier
+    if events and reservoir is None:
+        # a photoconductor bar with ohmic contacts: a carrier drifting out through its
+        # collecting contact is replaced through the other one, so the counts (and
+        # neutrality) are unchanged; the event is one collected carrier of the readout
+        # current.  With a reservoir the collecting boundary is the junction to it instead.
         t_n, t_p = readout.transit_times()
         add("electrons collected", 1.0 / t_n, (Factor(E),), (), flow=1)
         add("holes collected", 1.0 / t_p, (Factor(H),), (), flow=1)
     charge = counts.donors - counts.acceptors + donor_traps
+    if reservoir is not None:
+        if check_type:
+            _check_definite_type(scenario, counts, charge)
+        c = E if exchanged == ELECTRONS else H
+        t_x = reservoir.exchange_time(readout)
+        # the contact withdraws / supplies a carrier of the other kind with each exchange,
+        # so the volume stays neutral: a pair leaves or enters
+        add(f"{exchanged} swept out", 1.0 / t_x, (Factor(c),), pair_down,
+            f"{exchanged} from reservoir", flow=1 if events else 0)
+        add(f"{exchanged} from reservoir", reservoir.density_cm3 * vol / t_x, (), pair_up,
+            f"{exchanged} swept out", flow=-1 if events else 0)
     return Model(
         scenario=scenario,
         counts=counts,
@@ -540,6 +581,28 @@ def build_model(scenario: Scenario, *, counts: Counts | None = None) -> Model:
         charge=int(charge),
         trap_kinds=tuple(t.kind for t in scenario.traps),
     )
+
+
+def _check_definite_type(scenario: Scenario, counts: Counts, charge: int) -> None:
+    """Refuse a reservoir exchange of pairs when the other kind can run out.
+
+    A pair leaves with each exchanged carrier, so the other kind must outnumber the exchanged
+    kind in every reachable state.  With ``N_e - N_h = charge - sum_k M_k`` and
+    ``0 <= M_k <= T_k`` that holds exactly when the volume is n-type (holes exchanged:
+    ``charge - sum T_k >= 0``) or p-type (electrons exchanged: ``charge <= 0``) in every trap
+    configuration.
+    """
+    carrier = scenario.reservoir.carrier
+    excess = charge - sum(counts.traps) if carrier == HOLES else -charge
+    if excess >= 0:
+        return
+    other = "n" if carrier == HOLES else "p"
+    raise ScenarioError(
+        scenario.source, "reservoir", "carrier",
+        f"exchanging {carrier} moves a pair each time, which needs an {other}-type volume in "
+        f"every trap configuration; with {counts.donors} donors, {counts.acceptors} acceptors "
+        f"and {sum(counts.traps)} trap sites the {carrier} can outnumber the other kind by "
+        f"{-excess} (more {'donors' if other == 'n' else 'acceptors'} or fewer traps needed)")
 
 
 def with_light_off(model: Model) -> Model:

@@ -27,6 +27,7 @@ __all__ = [
     "Start",
     "RunSettings",
     "Readout",
+    "Reservoir",
     "Scenario",
     "load_scenario",
     "parse_scenario",
@@ -244,13 +245,49 @@ class Readout:
 
 
 @dataclass(frozen=True)
+class Reservoir:
+    """Exchange of one carrier kind with a neighbouring region held at a given density.
+
+    The volume is open on one side: carriers of ``carrier`` kind leave it (swept out by the
+    field, or taken by the junction or contact) at the rate ``N / t_x`` and enter it from the
+    neighbouring region at the rate ``density * V / t_x``, with ``t_x`` their exchange time.
+    The volume stays neutral through its ohmic contact: when one carrier of this kind enters
+    or leaves, the contact supplies or withdraws a carrier of the other kind within the
+    dielectric relaxation time (taken as instantaneous), so each exchange moves one
+    electron-hole pair.  This needs a volume of definite type (the other kind outnumbers this
+    one in every trap configuration); the model refuses others.
+
+    Attributes
+    ----------
+    carrier : "electrons" or "holes"  The kind exchanged (the volume's minority carrier)
+    density_cm3 : float  Its density in the neighbouring region [cm^-3] (at a junction:
+        n_i^2 / N in equilibrium, n_i^2 / N exp(q V_j / kT) at the bias V_j; 0 under a
+        strong reverse bias: pure collection)
+    exchange_time_s : float or None  t_x [s]; None: the kind's transit time of the
+        ``[readout]`` (L^2 / (mu bias))
+    """
+
+    carrier: Literal["electrons", "holes"]
+    density_cm3: float
+    exchange_time_s: float | None = None
+
+    def exchange_time(self, readout: Readout | None) -> float:
+        """t_x [s]: ``exchange_time_s``, else the kind's transit time of ``readout``."""
+        if self.exchange_time_s is not None:
+            return self.exchange_time_s
+        if readout is None:
+            return math.inf
+        return readout.transit_times()[1 if self.carrier == "holes" else 0]
+
+
+@dataclass(frozen=True)
 class Scenario:
     """A validated scenario.
 
     Attributes
     ----------
     title, notes : str
-    material, volume, traps, light, start, run, readout : the sections
+    material, volume, traps, light, start, run, readout, population, reservoir : the sections
     source : str  File name the scenario came from (``"<string>"`` for text)
     text : str  The TOML text as given
     """
@@ -264,6 +301,7 @@ class Scenario:
     run: RunSettings = field(default_factory=RunSettings)
     readout: Readout | None = None
     population: Population | None = None
+    reservoir: Reservoir | None = None
     notes: str = ""
     source: str = "<string>"
     text: str = ""
@@ -299,7 +337,7 @@ _S = lambda **kw: _Key("str", **kw)  # noqa: E731
 
 _TOP = {"title": _S(required=True), "notes": _S(default="")}
 _SECTIONS_ALLOWED = ("material", "volume", "traps", "light", "start", "run", "readout",
-                     "population")
+                     "population", "reservoir")
 
 _MATERIAL = {
     "temperature_K": _F(required=True, lo=0.0, lo_open=True),
@@ -354,6 +392,11 @@ _READOUT = {
     "hole_mobility_cm2_Vs": _F(required=True, lo=0.0),
     "collection": _S(default="mean", choices=("mean", "events")),
 }
+_RESERVOIR = {
+    "carrier": _S(required=True, choices=("electrons", "holes")),
+    "density_cm3": _F(required=True, lo=0.0),
+    "exchange_time_s": _F(lo=0.0, lo_open=True),
+}
 
 #: Every section's keys, by section name; ``traps`` rows apply to each ``[[traps]]`` entry.
 SCHEMA: dict[str, dict[str, _Key]] = {
@@ -365,6 +408,7 @@ SCHEMA: dict[str, dict[str, _Key]] = {
     "run": _RUN,
     "readout": _READOUT,
     "population": _POPULATION,
+    "reservoir": _RESERVOIR,
 }
 
 
@@ -542,10 +586,10 @@ def _check_modulation(src: str, light: Light, table: dict) -> None:
 
 
 def _check_channels(src: str, material: Material, light: Light, traps: tuple[Trap, ...], *,
-                    collecting: bool = False) -> None:
+                    collecting: bool = False, exchanging: bool = False) -> None:
     """Refuse scenarios in which nothing can happen or carriers are made but never lost."""
     band = (material.radiative_cm3_s, material.auger_electron_cm6_s, material.auger_hole_cm6_s)
-    has_loss = any(c > 0 for c in band) or any(
+    has_loss = exchanging or any(c > 0 for c in band) or any(
         t.electron_capture_cm3_s > 0 and t.hole_capture_cm3_s > 0 for t in traps)
     light_on = light.waveform != "off" and light.generation_cm3_s > 0
     if not has_loss and not traps and not light_on and not collecting:
@@ -614,8 +658,16 @@ def parse_scenario(data: dict[str, Any], *, source: str = "<string>", text: str 
     readout = None
     if "readout" in data:
         readout = Readout(**_read_table(src, "readout", data["readout"], _READOUT))
+    reservoir = None
+    if "reservoir" in data:
+        reservoir = Reservoir(**_read_table(src, "reservoir", data["reservoir"], _RESERVOIR))
+        if not math.isfinite(reservoir.exchange_time(readout)):
+            raise ScenarioError(src, "reservoir", "exchange_time_s",
+                                "give the exchange time, or a [readout] whose bias and "
+                                f"{reservoir.carrier[:-1]} mobility set a finite transit time")
     _check_channels(src, material, light, traps,
-                    collecting=readout is not None and readout.collection == "events")
+                    collecting=readout is not None and readout.collection == "events",
+                    exchanging=reservoir is not None)
     population = None
     if "population" in data:
         population = Population(**_read_table(src, "population", data["population"],
@@ -631,6 +683,7 @@ def parse_scenario(data: dict[str, Any], *, source: str = "<string>", text: str 
         run=run,
         readout=readout,
         population=population,
+        reservoir=reservoir,
         source=source,
         text=text,
     )
