@@ -88,7 +88,9 @@ VARIABLES: dict[str, Var] = {
                            "lower end of the 95 % interval of current_psd"),
     "current_psd_high": Var(("frequency",), "A2 Hz-1",
                             "upper end of the 95 % interval of current_psd"),
-    "current_shot_noise": Var((), "A2 Hz-1", "shot noise 2 q I of the collected current"),
+    "current_shot_noise": Var((), "A2 Hz-1",
+                              "white level of the collected current, full shot noise of every "
+                              "crossing: 2 q (I_out + I_in)"),
     "current_psd_lna": Var(("frequency",), "A2 Hz-1",
                            "linear-noise one-sided power spectral density of the current"),
     "count_histogram": Var(("species", "count_value"), "1",

@@ -9,9 +9,10 @@ from __future__ import annotations
 
 import numpy as np
 
-from . import continuum, exact, spectra
+from . import continuum, exact
 from .dataset import finish
 from .model import build_model
+from .readout import counts_events, exact_current, lna_current
 from .scenario import Scenario
 
 __all__ = ["exact_dataset", "exact_frequencies", "POINTS_PER_DECADE"]
@@ -84,11 +85,13 @@ def exact_dataset(scenario: Scenario, *, command: str | None = None,
     readout = scenario.readout
     attrs = {}
     if readout is not None:
-        a_e, a_h = spectra.current_scale(readout)
-        data["current_mean"] = ((), float(a_e * res.mean[0] + a_h * res.mean[1]))
-        data["current_psd"] = (("frequency",), spectra.readout_psd(res.psd_matrix, res.mean,
-                                                                    readout))
-        data["current_psd_lna"] = (("frequency",), spectra.readout_psd(smat, ss, readout))
+        cur = exact_current(model, res)
+        data["current_mean"] = ((), cur.mean)
+        data["current_psd"] = (("frequency",), cur.psd)
+        data["current_psd_lna"] = (("frequency",), lna_current(model, freqs, smat=smat,
+                                                                x=ss).psd)
+        if counts_events(model):
+            data["current_shot_noise"] = ((), cur.white)
         attrs.update({"readout_bias_V": readout.bias_V, "readout_length_cm": readout.length_cm})
     coords = {
         "t": ("t", t),

@@ -157,7 +157,16 @@ def plot_psd(ds: xr.Dataset, species_or_current: str = "current", ax: Axes | Non
             label="exact (master equation)" if tab.exact else f"Monte Carlo{k_txt}")
     if tab.psd_lna is not None:
         ax.plot(f, tab.psd_lna, color=_LNA_COLOR, lw=1.4, ls="--", label="linear noise")
-    if tab.is_current and tab.current_mean_A is not None and tab.current_mean_A != 0:
+    both_ways = False
+    if tab.is_current and "current_shot_noise" in ds:
+        white = float(ds["current_shot_noise"])
+        both_ways = tab.current_mean_A is None or not math.isclose(
+            white, float(spectra.shot_noise_psd(tab.current_mean_A)), rel_tol=0.02)
+        if both_ways:  # crossings both ways (a junction): the white level is 2 q (I_out + I_in)
+            ax.axhline(white, color="C2", lw=1.0, ls=":",
+                       label="shot noise of all crossings, 2q(I$_{out}$+I$_{in}$)")
+    if (tab.is_current and not both_ways and tab.current_mean_A is not None
+            and tab.current_mean_A != 0):
         shot = float(spectra.shot_noise_psd(tab.current_mean_A))
         ax.axhline(shot, color="C2", lw=1.0, ls=":",
                    label=f"shot noise 2qI, I = {_si(abs(tab.current_mean_A), 'A')}")

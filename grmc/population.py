@@ -107,13 +107,14 @@ def single_trap_share(model, freqs: np.ndarray, *, readout=None) -> float:
     """
     import dataclasses
 
-    from . import continuum, spectra
+    from . import continuum
     from .model import build_model
+    from .readout import lna_current
 
     def readout_spectrum(m) -> np.ndarray:
         smat = continuum.lna_psd(m, freqs)
         if readout is not None:
-            return spectra.readout_psd(smat, continuum.steady_state(m), readout)
+            return lna_current(m, freqs, smat=smat).psd
         return np.real(smat[0, 0])
 
     share = np.zeros(len(freqs))

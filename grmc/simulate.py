@@ -29,7 +29,8 @@ from .model import (
     draw_counts,
     nominal_counts,
 )
-from .scenario import Scenario
+from .readout import lna_current
+from .scenario import Scenario, ScenarioError
 
 if TYPE_CHECKING:  # pragma: no cover
     import xarray as xr
@@ -98,10 +99,27 @@ def prepare(model: Model, index: dict[str, int] | None = None) -> Prepared:
     return Prepared(model, kernel_arrays(model), start_state(model, steady), steady, cmap)
 
 
-def _all_channel_names(scenario: Scenario, counts: Counts) -> tuple[str, ...]:
-    """Channel names of the scenario with every trap level present (population runs)."""
+def _check_pixels(scenario: Scenario, draws) -> None:
+    """Refuse, before any simulation, a population in which some pixel's drawn counts do not
+    allow the reservoir's pair exchange (:func:`grmc.model.build_model`)."""
+    seen: set[Counts] = set()
+    for i, counts in enumerate(draws):
+        if counts in seen:
+            continue
+        seen.add(counts)
+        try:
+            build_model(scenario, counts=counts)
+        except ScenarioError as exc:
+            raise ScenarioError(exc.source, exc.section, exc.key,
+                                f"pixel {i} of the population (dopants = \"poisson\"): "
+                                f"{exc.message}") from None
+
+
+def _all_channels(scenario: Scenario, counts: Counts) -> Model:
+    """The scenario's model with every trap level present: the channel names (and flows) of
+    a population run."""
     full = dataclasses.replace(counts, traps=tuple(max(t, 1) for t in counts.traps))
-    return build_model(scenario, counts=full).channel_names
+    return build_model(scenario, counts=full, check_type=False)
 
 
 @dataclass
@@ -170,7 +188,8 @@ def run(
     poisson = rs.dopants == "poisson"
 
     counts0 = nominal_counts(scenario)
-    names = _all_channel_names(scenario, counts0)
+    every = _all_channels(scenario, counts0)
+    names = every.channel_names
     cache = _ModelCache(scenario, names)
     base = cache.get(counts0)
     model0 = base.model
@@ -191,13 +210,19 @@ def run(
     n_groups = _jackknife_groups(n_traj)
     group_size = n_traj // n_groups if n_groups else 0
 
+    def pixel_counts(i: int) -> Counts:
+        rng = np.random.default_rng(np.random.SeedSequence(rs.seed,
+                                                           spawn_key=(i, PURPOSE_DOPANTS)))
+        return draw_counts(scenario, rng)
+
+    if poisson and scenario.reservoir is not None:
+        _check_pixels(scenario, (pixel_counts(i) for i in range(n_traj)))
+
     def work(chunk: range, cancel: threading.Event, tick) -> _Acc:
         acc = _Acc()
         for i in chunk:
             if poisson:
-                rng = np.random.default_rng(np.random.SeedSequence(rs.seed,
-                                                                   spawn_key=(i, PURPOSE_DOPANTS)))
-                prep = cache.get(draw_counts(scenario, rng))
+                prep = cache.get(pixel_counts(i))
             else:
                 prep = base
             res = _simulate_sliced(simulate_trajectory, prep,
@@ -278,14 +303,17 @@ def run(
         data["current_psd"] = (("frequency",), cur_psd)
         data["current_psd_low"] = (("frequency",), c_low)
         data["current_psd_high"] = (("frequency",), c_high)
-        data["current_psd_lna"] = (("frequency",), spectra.readout_psd(smat, ss, readout))
+        theory = lna_current(model0, freqs, smat=smat, x=ss)
+        data["current_psd_lna"] = (("frequency",), theory.psd)
         cgroups = _groups(acc.group_current_psd, group_size)
-        # with collection events the spectrum sits on the white shot noise 2 q I of the
-        # collection: the Lorentzian analysis is of the G-R part above it
-        shot = (spectra.shot_noise_psd(acc.charge / (n * duration))
-                if readout.collection == "events" else 0.0)
+        # with collection events the spectrum sits on the white shot noise of the crossings,
+        # 2 q^2 sum_r flow_r^2 (events_r per second) = 2 q (I_out + I_in) (Schottky 1918), the
+        # measured rates standing for <a_r>: the Lorentzian analysis is of the G-R part above
+        shot = 0.0
         if readout.collection == "events":
-            data["current_shot_noise"] = ((), float(shot))
+            crossings = (np.asarray(every.flow_weight, float) ** 2) @ (acc.events / (n * duration))
+            shot = 2.0 * ELEMENTARY_CHARGE_C**2 * float(crossings)
+            data["current_shot_noise"] = ((), shot)
         band = None
         if readout.collection == "events":  # fit where the G-R part stands above the shot floor
             above = freqs[(data["current_psd_lna"][1] - shot) > 2.0 * shot]

@@ -1165,23 +1165,18 @@ def response_from_quadratures(quad: np.ndarray) -> tuple[np.ndarray, ...]:
 
 
 def readout_psd(smat: np.ndarray, mean_counts: np.ndarray, readout: Any) -> np.ndarray:
-    """One-sided spectrum of the readout current from a count spectral matrix [A^2/Hz].
+    """One-sided spectrum of the drift readout current ``a_e N_e + a_h N_h`` [A^2/Hz].
 
-    G-R part ``a_e^2 S_ee + 2 a_e a_h Re S_eh + a_h^2 S_hh`` (:func:`current_psd_from_matrix`);
-    with ``collection = "events"`` plus the shot noise ``2 q I`` of the collection (Schottky,
-    Ann. Phys. 57, 541, 1918): given the count path the collections are a Poisson process of
-    intensity ``N_e/t_n + N_h/t_p``, so the current's spectrum is the shot term plus ``q^2``
-    times the intensity's spectrum (a doubly stochastic Poisson process; Cox, J. R. Stat.
-    Soc. B 17, 129, 1955, from memory).
+    The G-R combination ``a_e^2 S_ee + 2 a_e a_h Re S_eh + a_h^2 S_hh`` of a count spectral
+    matrix (:func:`current_psd_from_matrix`), for ``[readout] collection = "mean"``.  A
+    current counted from crossing events (``collection = "events"``) is the flux spectrum of
+    the model instead (:mod:`grmc.readout`).
 
     Parameters
     ----------
     smat : ndarray (S, S, F)  One-sided count spectral matrix [count^2/Hz]
-    mean_counts : ndarray (S,)  Mean counts [count]
-    readout : Readout  (``collection`` read when present)
+    mean_counts : ndarray (S,)  Mean counts [count] (kept for the call signature)
+    readout : Readout
     """
     a_e, a_h = current_scale(readout)
-    gr = current_psd_from_matrix(smat, a_e, a_h)
-    if getattr(readout, "collection", "mean") != "events":
-        return gr
-    return gr + shot_noise_psd(a_e * mean_counts[0] + a_h * mean_counts[1])
+    return current_psd_from_matrix(smat, a_e, a_h)

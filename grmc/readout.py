@@ -1,0 +1,92 @@
+"""The readout current of a model: its mean and spectrum from the theory (linear noise, exact).
+
+Two readouts (``[readout] collection``):
+
+* ``"mean"``: the drift current of the counts, ``I = a_e N_e + a_h N_h`` with
+  ``a = q bias / L^2 mu`` (:func:`grmc.spectra.current_scale`); its spectrum is that
+  combination of the count spectral matrix (G-R noise only).
+* ``"events"``: ``q`` times the flux of carriers crossing the collecting boundary (the
+  channels with a ``flow`` weight in :mod:`grmc.model`: collection at an ohmic contact, and
+  exchange with a ``[reservoir]``).  Its spectrum is the flux spectrum of
+  :func:`grmc.continuum.flux_psd` (linear noise) or of the master equation
+  (:func:`grmc.exact.flux_spectrum`): the shot noise of every crossing plus the G-R part and
+  the correlation of each crossing with the count it changes.
+
+The Monte Carlo estimate is made from the simulated crossings themselves (``grmc.simulate``);
+this module gives the numbers it is compared with.
+"""
+
+from __future__ import annotations
+
+from typing import NamedTuple
+
+import numpy as np
+
+from . import continuum, spectra
+from .exact import ExactResult
+from .model import ELEMENTARY_CHARGE_C, Model
+
+__all__ = ["CurrentTheory", "counts_events", "exact_current", "lna_current"]
+
+
+class CurrentTheory(NamedTuple):
+    """Theory of the readout current.
+
+    Attributes
+    ----------
+    mean : float  Mean current [A]
+    psd : ndarray (F,) or None  One-sided PSD [A^2/Hz] (None: the exact solution was
+        solved without frequencies)
+    white : float  High-frequency (shot) level, ``2 q^2 sum_r flow_r^2 <a_r>``; 0 with
+        ``collection = "mean"`` [A^2/Hz]
+    """
+
+    mean: float
+    psd: np.ndarray
+    white: float
+
+
+def counts_events(model: Model) -> bool:
+    """True when the readout current is counted from crossing events."""
+    readout = model.scenario.readout
+    return readout is not None and readout.collection == "events"
+
+
+def lna_current(model: Model, freqs: np.ndarray, *, smat: np.ndarray | None = None,
+                x: np.ndarray | None = None) -> CurrentTheory:
+    """Readout current of the linear-noise approximation about the steady state.
+
+    Parameters
+    ----------
+    model : Model  With a ``[readout]``
+    freqs : ndarray (F,)  Frequencies [Hz]
+    smat : ndarray (S, S, F), optional  The count spectral matrix at ``freqs`` if already
+        computed (:func:`grmc.continuum.lna_psd`) [count^2/Hz]
+    x : ndarray (S,), optional  The steady state [count]
+    """
+    q = ELEMENTARY_CHARGE_C
+    if counts_events(model):
+        return CurrentTheory(q * continuum.flux_mean(model), q * q * continuum.flux_psd(model,
+                             freqs), q * q * continuum.flux_white(model))
+    readout = model.scenario.readout
+    if smat is None:
+        smat = continuum.lna_psd(model, freqs)
+    if x is None:
+        x = continuum.steady_state(model)
+    a_e, a_h = spectra.current_scale(readout)
+    return CurrentTheory(float(a_e * x[0] + a_h * x[1]),
+                         spectra.readout_psd(smat, x, readout), 0.0)
+
+
+def exact_current(model: Model, result: ExactResult) -> CurrentTheory:
+    """Readout current of the exact master-equation solution (with its ``freqs``)."""
+    q = ELEMENTARY_CHARGE_C
+    if counts_events(model):
+        laws = model.propensities(result.states) @ (np.asarray(model.flow_weight, float) ** 2)
+        white = 2.0 * q * q * float(result.probability @ laws)
+        psd = None if result.flux_psd is None else q * q * result.flux_psd
+        return CurrentTheory(q * result.flux_mean, psd, white)
+    a_e, a_h = spectra.current_scale(model.scenario.readout)
+    psd = (None if result.psd_matrix is None else
+           spectra.readout_psd(result.psd_matrix, result.mean, model.scenario.readout))
+    return CurrentTheory(float(a_e * result.mean[0] + a_h * result.mean[1]), psd, 0.0)
