@@ -105,8 +105,23 @@ def summarize(scenario: Scenario) -> dict:
         "relaxation_times_s": times,
         "event_rate_per_trajectory_s": rate,
         "expected_events": events,
+        "readout_current_A": _current(model),
+        "reservoir": None if scenario.reservoir is None else {
+            "carrier": scenario.reservoir.carrier,
+            "density_cm3": scenario.reservoir.density_cm3,
+            "exchange_time_s": scenario.reservoir.exchange_time(scenario.readout),
+        },
         "warnings": warnings,
     }
+
+
+def _current(model) -> float | None:
+    """Continuum mean readout current [A], None without a [readout]."""
+    if model.scenario.readout is None:
+        return None
+    from .readout import lna_current
+
+    return float(lna_current(model, np.array([1.0])).mean)
 
 
 def _eng(x: float) -> str:
@@ -125,6 +140,11 @@ def format_summary(info: dict) -> str:
         if k.startswith("T_"):
             lines.append(f"  traps {k[2:]:<11} {v}")
     lines.append(f"  conserved charge  {info['conserved_charge']}  (N_e - N_h + sum M_k)")
+    res = info.get("reservoir")
+    if res:
+        lines.append(f"  reservoir         {res['carrier']} at {_eng(res['density_cm3'])} cm^-3, "
+                     f"exchange time {_eng(res['exchange_time_s'])} s (pairs: the contact "
+                     "keeps the volume neutral)")
     lines.append("")
     lines.append(f"  {'species':<22}{'steady (count)':>16}{'density (cm^-3)':>18}"
                  f"{'var LNA':>14}{'Fano':>8}{'start':>10}")
@@ -140,6 +160,8 @@ def format_summary(info: dict) -> str:
         lines.append(f"  relaxation times (LNA)      {times} s")
     lines.append(f"  event rate per trajectory   {_eng(info['event_rate_per_trajectory_s'])} /s")
     lines.append(f"  expected events of the run  {_eng(info['expected_events'])}")
+    if info.get("readout_current_A") is not None:
+        lines.append(f"  readout current (continuum) {_eng(info['readout_current_A'])} A")
     lines.append(f"  channels                    {', '.join(info['channels'])}")
     for w in info["warnings"]:
         lines.append(f"warning: {w}")
