@@ -596,6 +596,9 @@ def steady_state(
 def equilibrium(model: Model) -> np.ndarray:
     """Dark steady state (thermal equilibrium) of the model [count].
 
+    With a ``[reservoir]`` whose density differs from the volume's own equilibrium density
+    this is the dark steady state the exchange sets, not thermal equilibrium.
+
     Parameters
     ----------
     model : Model

@@ -12,7 +12,7 @@ import numpy as np
 from . import continuum, exact
 from .dataset import finish
 from .model import build_model
-from .readout import counts_events, exact_current, lna_current
+from .readout import counts_events, describe_current, exact_current, lna_current
 from .scenario import Scenario
 
 __all__ = ["exact_dataset", "exact_frequencies", "POINTS_PER_DECADE"]
@@ -92,7 +92,8 @@ def exact_dataset(scenario: Scenario, *, command: str | None = None,
                                                                 x=ss).psd)
         if counts_events(model):
             data["current_shot_noise"] = ((), cur.white)
-        attrs.update({"readout_bias_V": readout.bias_V, "readout_length_cm": readout.length_cm})
+        attrs.update({"readout_bias_V": readout.bias_V, "readout_length_cm": readout.length_cm,
+                      "readout_current": describe_current(model)})
     coords = {
         "t": ("t", t),
         "species": ("species", np.array(model.species, dtype=object)),

@@ -83,6 +83,8 @@ class SpectrumTable:
     title : str  Scenario title
     bias_V : float or None  Readout bias [V]
     current_mean_A : float or None  Mean readout current [A]
+    current_definition : str  What the readout current is (files written before this was
+        stored: the drift current of the bar)
     """
 
     quantity: str
@@ -99,6 +101,7 @@ class SpectrumTable:
     title: str
     bias_V: float | None
     current_mean_A: float | None
+    current_definition: str = ""
 
 
 def _open(ds: Any) -> xr.Dataset:
@@ -114,6 +117,9 @@ def _species_names(ds: xr.Dataset) -> list[str]:
     if "species" not in ds.coords and "species" not in ds.dims:
         return []
     return [str(s) for s in np.asarray(ds["species"].values)]
+
+
+_DRIFT = "drift current of the biased bar, I = q bias/L^2 (mu_n N_e + mu_p N_h)"
 
 
 def _bias(ds: xr.Dataset) -> float | None:
@@ -237,6 +243,7 @@ def spectrum_table(ds: Any, quantity: str | None = None) -> SpectrumTable:
         psd_low=low, psd_high=high, psd_lna=lna, n_segments=n_seg, interval_note=note,
         exact="probability_outside" in ds,
         title=title, bias_V=_bias(ds), current_mean_A=current_mean,
+        current_definition=str(ds.attrs.get("readout_current", _DRIFT)),
     )
 
 
@@ -253,11 +260,7 @@ def _fmt(x: float) -> str:
 
 
 def _header_lines(tab: SpectrumTable) -> list[str]:
-    what = (
-        "readout current of the biased bar (noise of I = q bias/L^2 (mu_n N_e + mu_p N_h))"
-        if tab.is_current
-        else f"number of {tab.quantity} in the volume"
-    )
+    what = tab.current_definition if tab.is_current else f"number of {tab.quantity} in the volume"
     lines = [
         "grmc noise spectrum",
         f"scenario: {tab.title}",

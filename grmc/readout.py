@@ -26,7 +26,8 @@ from . import continuum, spectra
 from .exact import ExactResult
 from .model import ELEMENTARY_CHARGE_C, Model
 
-__all__ = ["CurrentTheory", "counts_events", "exact_current", "lna_current"]
+__all__ = ["CurrentTheory", "counts_events", "current_gradient", "describe_current",
+           "exact_current", "lna_current"]
 
 
 class CurrentTheory(NamedTuple):
@@ -50,6 +51,37 @@ def counts_events(model: Model) -> bool:
     """True when the readout current is counted from crossing events."""
     readout = model.scenario.readout
     return readout is not None and readout.collection == "events"
+
+
+def describe_current(model: Model) -> str:
+    """One line saying what the readout current is (stored with the data, used by exports)."""
+    if not counts_events(model):
+        return ("drift current of the biased bar, I = q bias/L^2 (mu_n N_e + mu_p N_h): "
+                "generation-recombination noise of the counts")
+    res = model.scenario.reservoir
+    if res is None:
+        return ("collected current of a photoconductor bar, q times the carriers reaching "
+                "their collecting contact per second (replaced at the ohmic contacts): shot "
+                "noise of collection plus generation-recombination noise")
+    return (f"junction current, q times ({res.carrier} swept out - {res.carrier} entering "
+            "from the neighbouring region) per second: shot noise of all crossings plus "
+            "generation-recombination noise")
+
+
+def current_gradient(model: Model, x: np.ndarray) -> np.ndarray:
+    """d<I>/dx of the readout current at the counts x [A per count], shape (species,).
+
+    ``q sum_r flow_r dw_r/dx`` for a current of crossing events (the macroscopic laws of
+    :meth:`grmc.model.Model.rate_jacobian`), ``(a_e, a_h, 0, ...)`` for the drift current.
+    The linearised response of the current to a small change of the counts (e.g. the drive
+    response of :func:`grmc.continuum.drive_response`) is this dotted with that change.
+    """
+    if counts_events(model):
+        flow = np.asarray(model.flow_weight, dtype=np.float64)
+        return ELEMENTARY_CHARGE_C * (flow @ model.rate_jacobian(np.asarray(x, float)))
+    out = np.zeros(model.n_species)
+    out[0], out[1] = spectra.current_scale(model.scenario.readout)
+    return out
 
 
 def lna_current(model: Model, freqs: np.ndarray, *, smat: np.ndarray | None = None,

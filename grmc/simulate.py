@@ -29,7 +29,7 @@ from .model import (
     draw_counts,
     nominal_counts,
 )
-from .readout import lna_current
+from .readout import current_gradient, describe_current, lna_current
 from .scenario import Scenario, ScenarioError
 
 if TYPE_CHECKING:  # pragma: no cover
@@ -324,7 +324,7 @@ def run(
         data.update(_fit_vars([cfit], prefix="current_", species_dim=False))
 
     if model0.modulation is not None:
-        data.update(_response_vars(acc, model0, readout is not None, a_e, a_h))
+        data.update(_response_vars(acc, model0, readout is not None))
 
     hist = _histogram(acc.hist, S)
     coords = {
@@ -382,6 +382,7 @@ def run(
             "readout_length_cm": readout.length_cm,
             "readout_electron_mobility_cm2_Vs": readout.electron_mobility_cm2_Vs,
             "readout_hole_mobility_cm2_Vs": readout.hole_mobility_cm2_Vs,
+            "readout_current": describe_current(model0),
         })
     for tr, total in zip(scenario.traps, counts0.traps):
         attrs[f"trap_count_{tr.label}"] = int(total)
@@ -608,7 +609,7 @@ def _histogram(hist: dict, n_species: int):
     return np.arange(lo, hi, dtype=np.int64), probs
 
 
-def _response_vars(acc: _Acc, model: Model, current: bool, a_e: float, a_h: float) -> dict:
+def _response_vars(acc: _Acc, model: Model, current: bool) -> dict:
     """Response at the drive frequency (Monte Carlo lock-in beside the continuum transfer
     function)."""
     channel, kind, freq, depth, _ = model.modulation
@@ -628,9 +629,10 @@ def _response_vars(acc: _Acc, model: Model, current: bool, a_e: float, a_h: floa
     if current:
         i_amp, i_err, i_ph, i_ph_err = spectra.response_from_quadratures(
             np.array([row[2] for row in acc.quad]))
-        # the current is linear in the counts: its continuum response is the same combination
+        # linearised: the current's continuum response is its gradient on the count response
+        # (the modulated optical channel itself moves no carrier across the boundary)
         resp = c_amp * np.exp(1j * c_ph)
-        i_c = a_e * resp[0] + a_h * resp[1]
+        i_c = current_gradient(model, continuum.steady_state(model)) @ resp
         out.update({
             "current_response_amplitude": ((), float(i_amp)),
             "current_response_amplitude_stderr": ((), float(i_err)),
