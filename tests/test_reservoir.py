@@ -310,3 +310,22 @@ modulation_depth = {m:g}
     assert err < 0.1 * amp  # resolved: the check has power
     assert abs(got - amp) < 4 * err
     assert abs(ph - phase) < 4 * ph_err
+
+
+def test_exact_command_writes_the_junction_current(tmp_path):
+    """`grmc exact` on the exchange box: the file's current spectrum is the closed form above,
+    its white level 4 q^2 R, and an export says what the current is."""
+    from grmc.cli import main
+
+    scen, out, csv = tmp_path / "box.toml", tmp_path / "box.nc", tmp_path / "box.csv"
+    scen.write_text(BOX)
+    assert main(["exact", str(scen), "-o", str(out)]) == 0
+    import xarray as xr
+
+    with xr.open_dataset(out) as ds:
+        f = ds["frequency"].values
+        np.testing.assert_allclose(ds["current_psd"].values, Q**2 * _net_crossing_psd(f),
+                                   rtol=1e-7)
+        assert float(ds["current_shot_noise"]) == pytest.approx(4 * Q * Q * RATE, rel=1e-9)
+    assert main(["export", str(out), "--format", "csv", "-o", str(csv)]) == 0
+    assert "junction current" in csv.read_text().splitlines()[2]
