@@ -82,6 +82,7 @@ VARIABLES: dict[str, Var] = {
     "events": Var(("channel",), "1", "events in the window, all trajectories together"),
     "event_rate": Var(("channel",), "s-1", "mean events per second per trajectory", _ENS),
     "current_mean": Var((), "A", "mean readout current", "t: mean realization: mean"),
+    "current_mean_continuum": Var((), "A", "continuum steady-state readout current"),
     "current_psd": Var(("frequency",), "A2 Hz-1",
                        "one-sided power spectral density of the readout current", _ENS),
     "current_psd_low": Var(("frequency",), "A2 Hz-1",

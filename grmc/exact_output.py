@@ -88,8 +88,9 @@ def exact_dataset(scenario: Scenario, *, command: str | None = None,
         cur = exact_current(model, res)
         data["current_mean"] = ((), cur.mean)
         data["current_psd"] = (("frequency",), cur.psd)
-        data["current_psd_lna"] = (("frequency",), lna_current(model, freqs, smat=smat,
-                                                                x=ss).psd)
+        theory = lna_current(model, freqs, smat=smat, x=ss)
+        data["current_psd_lna"] = (("frequency",), theory.psd)
+        data["current_mean_continuum"] = ((), theory.mean)
         if counts_events(model):
             data["current_shot_noise"] = ((), cur.white)
         attrs.update({"readout_bias_V": readout.bias_V, "readout_length_cm": readout.length_cm,

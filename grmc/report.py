@@ -6,6 +6,8 @@ import math
 
 import numpy as np
 
+from .model import ELEMENTARY_CHARGE_C
+
 __all__ = ["format_run_table", "FLAG_SIGMAS"]
 
 #: A Monte Carlo value is flagged when it differs from the continuum or linear-noise value by
@@ -105,7 +107,15 @@ def format_run_table(ds) -> str:
                 f"{_g(float(ds['current_response_phase_continuum']), 3)})")
     if "current_mean" in ds:
         i_mean = float(ds["current_mean"])
-        lines.append(f"  current: mean {_g(i_mean, 5)} A")
+        cont = (f" (continuum {_g(float(ds['current_mean_continuum']), 5)} A)"
+                if "current_mean_continuum" in ds else "")
+        lines.append(f"  current: mean {_g(i_mean, 5)} A{cont}")
+        if "current_shot_noise" in ds:
+            white = float(ds["current_shot_noise"])
+            fano = white / (2 * ELEMENTARY_CHARGE_C * abs(i_mean)) if i_mean else math.inf
+            lines.append(f"           white (shot) level {_g(white, 3)} A^2/Hz, "
+                         f"{_g(fano, 3)} x 2q|I|" + (" (crossings both ways)"
+                                                    if fano > 1.02 else ""))
         if "current_plateau" in ds:
             for j in range(ds["current_plateau"].size):
                 s0 = float(ds["current_plateau"][j])

@@ -305,6 +305,7 @@ def run(
         data["current_psd_high"] = (("frequency",), c_high)
         theory = lna_current(model0, freqs, smat=smat, x=ss)
         data["current_psd_lna"] = (("frequency",), theory.psd)
+        data["current_mean_continuum"] = ((), theory.mean)
         cgroups = _groups(acc.group_current_psd, group_size)
         # with collection events the spectrum sits on the white shot noise of the crossings,
         # 2 q^2 sum_r flow_r^2 (events_r per second) = 2 q (I_out + I_in) (Schottky 1918), the
