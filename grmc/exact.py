@@ -825,6 +825,8 @@ class ExactResult:
         by each time (bounds the L1 error of the transient law)
     flux_mean : float or None  Mean collected flux ``sum_r flow_r <a_r>`` [carriers/s]
         (None when no channel has a flow)
+    flux_white : float or None  Its white (high-frequency) level ``2 sum_r flow_r^2 <a_r>``
+        [s^-1]
     flux_psd : ndarray or None, shape (F,)  Its one-sided spectrum [s^-1]
         (:func:`flux_spectrum`); ``q^2`` times it is the current's in A^2/Hz
     """
@@ -850,6 +852,7 @@ class ExactResult:
     transient_var: np.ndarray | None = None
     transient_mass_lost: np.ndarray | None = None
     flux_mean: float | None = None
+    flux_white: float | None = None
     flux_psd: np.ndarray | None = None
     _generator: sp.csr_matrix | None = field(default=None, repr=False)
     _support: np.ndarray | None = field(default=None, repr=False)
@@ -1123,7 +1126,7 @@ def solve(
 
     mean, cov = _moments(space.states, pi)
     out_rate = float(pi @ outflow)
-    psd = psd_matrix = psd_eh = flux_psd = flux_mean = None
+    psd = psd_matrix = psd_eh = flux_psd = flux_mean = flux_white = None
     if freqs is not None:
         psd_matrix = spectral_matrix(Qs, pi_s, space.states[sup].astype(np.float64), freqs)
         psd = np.stack([psd_matrix[s, s].real for s in range(S)])
@@ -1131,6 +1134,7 @@ def solve(
     if np.any(model.flow_weight):
         K, K2 = flux_matrices(model, space, sup)
         flux_mean = float(pi_s @ np.asarray(K.sum(axis=1)).ravel())
+        flux_white = 2.0 * float(pi_s @ np.asarray(K2.sum(axis=1)).ravel())
         if freqs is not None:
             flux_mean, flux_psd = flux_spectrum(Qs, pi_s, K, K2, freqs)
     t_mean = t_var = None
@@ -1165,6 +1169,7 @@ def solve(
         transient_var=t_var,
         transient_mass_lost=lost,
         flux_mean=flux_mean,
+        flux_white=flux_white,
         flux_psd=flux_psd,
         _generator=Qs,
         _support=sup,

@@ -114,10 +114,8 @@ def exact_current(model: Model, result: ExactResult) -> CurrentTheory:
     """Readout current of the exact master-equation solution (with its ``freqs``)."""
     q = ELEMENTARY_CHARGE_C
     if counts_events(model):
-        laws = model.propensities(result.states) @ (np.asarray(model.flow_weight, float) ** 2)
-        white = 2.0 * q * q * float(result.probability @ laws)
         psd = None if result.flux_psd is None else q * q * result.flux_psd
-        return CurrentTheory(q * result.flux_mean, psd, white)
+        return CurrentTheory(q * result.flux_mean, psd, q * q * result.flux_white)
     a_e, a_h = spectra.current_scale(model.scenario.readout)
     psd = (None if result.psd_matrix is None else
            spectra.readout_psd(result.psd_matrix, result.mean, model.scenario.readout))

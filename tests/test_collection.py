@@ -12,20 +12,10 @@ import math
 
 import numpy as np
 from birth_death import birth_death_box
+from intervals import current_outside
 
 import grmc
 from grmc.model import ELEMENTARY_CHARGE_C as Q
-
-
-def _outside_ok(ds, reference) -> tuple[int, int, float]:
-    f = ds["frequency"].values
-    fs = ds.attrs["samples"] / ds.attrs["duration_s"]
-    sel = f <= fs / 5
-    ref = reference(f[sel])
-    lo, hi = ds["current_psd_low"].values[sel], ds["current_psd_high"].values[sel]
-    out = int(np.sum((ref < lo) | (ref > hi)))
-    m = int(sel.sum())
-    return out, m, 4 * math.sqrt(m * 0.05 * 0.95)
 
 
 def test_shot_noise_of_a_steady_population():
@@ -58,7 +48,7 @@ seed = 31
     # the mean current: Poisson count of collections over n * T, relative error 1/sqrt(count)
     count = current / Q * ds.attrs["trajectories"] * ds.attrs["duration_s"]
     assert abs(float(ds["current_mean"]) - current) < 4 * current / math.sqrt(count)
-    out, m, width = _outside_ok(ds, lambda f: np.full_like(f, 2 * Q * current))
+    out, m, width = current_outside(ds, lambda f: np.full_like(f, 2 * Q * current))
     assert abs(out - 0.05 * m) < width, (out, m)
     # the linear-noise line is the shot noise here
     np.testing.assert_allclose(ds["current_psd_lna"].values, 2 * Q * current, rtol=1e-9)
@@ -93,7 +83,7 @@ seed = 32
     def reference(f):
         return 2 * Q * current + 4 * Q * gain * current / (1 + (2 * math.pi * f * tau) ** 2)
 
-    out, m, width = _outside_ok(ds, reference)
+    out, m, width = current_outside(ds, reference)
     assert abs(out - 0.05 * m) < width, (out, m)
     # power: on the plateau (f < f_c / 2) the mean ratio estimate / reference is 1 within its
     # standard error 1/sqrt(K m) (each bin an average of K independent periodogram values, a

@@ -1,9 +1,8 @@
 """A volume open to a neighbouring region (`[reservoir]`): pair exchange, junction current.
 
 References named beside each check.  Statistical tolerances: means within 4 standard errors
-of the run's own estimate; at m frequencies up to a fifth of the sampling rate the number of
-references outside the 95 % chi-squared intervals (Welch 1967) within m 0.05 +/- 4 sqrt(m
-0.05 0.95) (binomial); fixed seeds.
+of the run's own estimate; spectra by the binomial count of references outside the 95 %
+intervals (``tests/intervals.py``); fixed seeds.
 """
 
 from __future__ import annotations
@@ -12,6 +11,7 @@ import math
 
 import numpy as np
 import pytest
+from intervals import current_outside
 from scipy import stats
 
 import grmc
@@ -240,18 +240,18 @@ def test_monte_carlo_exchange_box_current():
     n_cross = float(ds["events"].sum())  # Poisson-like count of crossings
     assert abs(float(ds["current_shot_noise"]) - 4 * Q * Q * RATE) < (
         4 * 4 * Q * Q * RATE / math.sqrt(n_cross))
-    f = ds["frequency"].values
-    fs = ds.attrs["samples"] / ds.attrs["duration_s"]
-    sel = f <= fs / 5
     t_seg = ds.attrs["duration_s"] / spectra.choose_segments(ds.attrs["trajectories"],
                                                              ds.attrs["samples"])
-    window = spectra.rectangular_window_factor(f[sel], 1 / (2 * np.pi * T_X), t_seg)
-    ref = Q**2 * 4 * RATE * (1 - window / (1 + (2 * np.pi * f[sel] * T_X) ** 2))
-    lo, hi = ds["current_psd_low"].values[sel], ds["current_psd_high"].values[sel]
-    out, m = int(np.sum((ref < lo) | (ref > hi))), int(sel.sum())
-    assert abs(out - 0.05 * m) < 4 * math.sqrt(m * 0.05 * 0.95), (out, m)
+
+    def expected(f):
+        window = spectra.rectangular_window_factor(f, 1 / (2 * np.pi * T_X), t_seg)
+        return Q**2 * 4 * RATE * (1 - window / (1 + (2 * np.pi * f * T_X) ** 2))
+
+    out, m, width = current_outside(ds, expected)
+    assert abs(out - 0.05 * m) < width, (out, m)
     # the lowest bin shows the window: far above the true spectrum, at the window's value
-    assert lo[0] > 2 * Q**2 * _net_crossing_psd(f[0])
+    f0 = float(ds["frequency"][0])
+    assert float(ds["current_psd_low"][0]) > 2 * Q**2 * _net_crossing_psd(f0)
 
 
 def test_monte_carlo_junction_pixel_against_master_equation():
@@ -274,12 +274,8 @@ def test_monte_carlo_junction_pixel_against_master_equation():
                                             "electrons from reservoir")]].sum())
     tot = ds.attrs["trajectories"] * ds.attrs["duration_s"]
     assert abs(float(ds["current_mean"]) - cur.mean) < 4 * Q * math.sqrt(crossings) / tot
-    fs = ds.attrs["samples"] / ds.attrs["duration_s"]
-    sel = f <= fs / 5
-    lo, hi = ds["current_psd_low"].values[sel], ds["current_psd_high"].values[sel]
-    ref = cur.psd[sel]
-    out, m = int(np.sum((ref < lo) | (ref > hi))), int(sel.sum())
-    assert abs(out - 0.05 * m) < 4 * math.sqrt(m * 0.05 * 0.95), (out, m)
+    out, m, width = current_outside(ds, cur.psd)
+    assert abs(out - 0.05 * m) < width, (out, m)
     # and the continuum's answer is visibly off in this few-carrier volume
     assert abs(continuum.steady_state(model)[0] - res.mean[0]) > 4 * float(
         ds["stationary_mean_stderr"][0])
