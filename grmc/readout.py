@@ -107,7 +107,7 @@ def lna_current(model: Model, freqs: np.ndarray, *, smat: np.ndarray | None = No
         x = continuum.steady_state(model)
     a_e, a_h = spectra.current_scale(readout)
     return CurrentTheory(float(a_e * x[0] + a_h * x[1]),
-                         spectra.readout_psd(smat, x, readout), 0.0)
+                         spectra.current_psd_from_matrix(smat, a_e, a_h), 0.0)
 
 
 def exact_current(model: Model, result: ExactResult) -> CurrentTheory:
@@ -118,5 +118,5 @@ def exact_current(model: Model, result: ExactResult) -> CurrentTheory:
         return CurrentTheory(q * result.flux_mean, psd, q * q * result.flux_white)
     a_e, a_h = spectra.current_scale(model.scenario.readout)
     psd = (None if result.psd_matrix is None else
-           spectra.readout_psd(result.psd_matrix, result.mean, model.scenario.readout))
+           spectra.current_psd_from_matrix(result.psd_matrix, a_e, a_h))
     return CurrentTheory(float(a_e * result.mean[0] + a_h * result.mean[1]), psd, 0.0)

@@ -1162,21 +1162,3 @@ def response_from_quadratures(quad: np.ndarray) -> tuple[np.ndarray, ...]:
         amp_err = np.hypot(a * sa, b * sb) / amp
         phase_err = np.hypot(b * sa, a * sb) / amp**2
     return amp, amp_err, np.arctan2(b, a), phase_err
-
-
-def readout_psd(smat: np.ndarray, mean_counts: np.ndarray, readout: Any) -> np.ndarray:
-    """One-sided spectrum of the drift readout current ``a_e N_e + a_h N_h`` [A^2/Hz].
-
-    The G-R combination ``a_e^2 S_ee + 2 a_e a_h Re S_eh + a_h^2 S_hh`` of a count spectral
-    matrix (:func:`current_psd_from_matrix`), for ``[readout] collection = "mean"``.  A
-    current counted from crossing events (``collection = "events"``) is the flux spectrum of
-    the model instead (:mod:`grmc.readout`).
-
-    Parameters
-    ----------
-    smat : ndarray (S, S, F)  One-sided count spectral matrix [count^2/Hz]
-    mean_counts : ndarray (S,)  Mean counts [count] (kept for the call signature)
-    readout : Readout
-    """
-    a_e, a_h = current_scale(readout)
-    return current_psd_from_matrix(smat, a_e, a_h)
