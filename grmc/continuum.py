@@ -57,9 +57,8 @@ __all__ = [
     "ContinuumError",
     "LNAResult",
     "equilibrium",
-    "flux_mean",
-    "flux_psd",
-    "flux_white",
+    "FluxLNA",
+    "flux_lna",
     "lna",
     "lna_covariance",
     "lna_psd",
@@ -881,49 +880,29 @@ def lna_psd(
     return 2.0 * np.einsum("ia,fab,jb->ijf", proj, s, proj)
 
 
-def _expansion_point(model: Model, x, empty) -> tuple[np.ndarray, np.ndarray]:
-    if x is None:
-        return _solve(model)
-    x = np.asarray(x, dtype=np.float64)
-    return x, (_empty_of(model, x) if empty is None else np.asarray(empty, dtype=np.float64))
+class FluxLNA(NamedTuple):
+    """Linear-noise answer for the collected flux ``J = sum_r flow_r dN_r/dt``.
 
-
-def flux_mean(model: Model, x: np.ndarray | None = None, *,
-              empty: np.ndarray | None = None) -> float:
-    """Mean collected flux ``J = sum_r flow_r w_r(x)`` [carriers/s] (``q J`` is the current).
-
-    Parameters
+    Attributes
     ----------
-    model : Model  Its ``flow_weight`` marks the channels that move a carrier across the
-        collecting boundary (+1 out, -1 in)
-    x, empty : optional  State (and empty traps) to evaluate at; default the steady state
+    mean : float  ``sum_r flow_r w_r(x)`` [carriers/s] (``q`` times it is the current)
+    white : float  High-frequency level ``2 sum_r flow_r^2 w_r`` [s^-1]
+    psd : ndarray (F,)  One-sided spectrum [s^-1] (``q^2`` times it is in A^2/Hz)
     """
-    x, empty = _expansion_point(model, x, empty)
-    return float(np.asarray(model.flow_weight, dtype=float) @ _Laws(model).rates(x, empty))
+
+    mean: float
+    white: float
+    psd: np.ndarray
 
 
-def flux_white(model: Model, x: np.ndarray | None = None, *,
-               empty: np.ndarray | None = None) -> float:
-    """White (high-frequency) level of the flux spectrum, ``2 sum_r flow_r^2 w_r`` [s^-1].
+def flux_lna(model: Model, freqs: np.ndarray, *, x: np.ndarray | None = None,
+             empty: np.ndarray | None = None) -> FluxLNA:
+    """Mean, white level and linear-noise spectrum of the collected flux.
 
-    Every crossing is a unit jump, so far above every relaxation rate the flux is full shot
-    noise of all crossings in both directions: ``q^2`` times this is ``2 q (I_out + I_in)``
-    (Schottky, Ann. Phys. 57, 541, 1918; for a junction at zero bias 4 q I_0, van der Ziel,
-    Noise in Solid State Devices and Circuits, Wiley 1986, from memory).
-    """
-    x, empty = _expansion_point(model, x, empty)
-    w2 = np.asarray(model.flow_weight, dtype=float) ** 2
-    return float(2.0 * (w2 @ _Laws(model).rates(x, empty)))
-
-
-def flux_psd(model: Model, freqs: np.ndarray, *, x: np.ndarray | None = None,
-             empty: np.ndarray | None = None) -> np.ndarray:
-    """One-sided linear-noise spectrum of the collected flux [s^-2/Hz = s^-1] (``q^2`` times
-    it is the current's in A^2/Hz).
-
-    The flux ``J = sum_r flow_r dN_r/dt`` counts crossings of the collecting boundary.  In the
-    linear-noise approximation each channel fires at ``w_r(x) + xi_r`` with white ``xi_r`` of
-    intensity ``w_r`` and ``dx/dt = nu^T (w + xi)``, so
+    The flux ``J = sum_r flow_r dN_r/dt`` counts crossings of the collecting boundary
+    (``model.flow_weight``: +1 out, -1 in).  In the linear-noise approximation each channel
+    fires at ``w_r(x) + xi_r`` with white ``xi_r`` of intensity ``w_r`` and
+    ``dx/dt = nu^T (w + xi)``, so
 
         dJ(w) = sum_r g_r(w) xi_r,   g_r(w) = flow_r + phi^T (i w - A)^-1 nu_r,
         S_J(f) = 2 sum_r |g_r(w)|^2 w_r,   phi = sum_r flow_r dw_r/dx
@@ -932,19 +911,28 @@ def flux_psd(model: Model, freqs: np.ndarray, *, x: np.ndarray | None = None,
     in the later crossing rates).  Channels that move no carrier in the volume (``nu_r = 0``,
     a contact that replaces what it collects) give the shot term ``2 flow_r^2 w_r`` of a
     doubly stochastic Poisson process; pair exchange with a reservoir also correlates each
-    crossing with the count it changes.  Exact for first-order networks.
+    crossing with the count it changes.  Exact for first-order networks.  Far above every
+    relaxation rate ``S_J`` tends to ``white``: full shot noise of all crossings, ``q^2``
+    times it is ``2 q (I_out + I_in)`` (Schottky, Ann. Phys. 57, 541, 1918; for a junction
+    at zero bias 4 q I_0, van der Ziel, Noise in Solid State Devices and Circuits, Wiley
+    1986, from memory).
 
     Parameters
     ----------
     model : Model
     freqs : array_like  Frequencies >= 0 [Hz]
-    x, empty : optional  Expansion point; default the continuum steady state
+    x, empty : optional  Expansion point (and empty traps); default the continuum steady
+        state, solved once
 
     Returns
     -------
-    ndarray, shape (F,)  [s^-1]  (``integral`` of the non-white part follows Parseval)
+    FluxLNA
     """
-    x, empty = _expansion_point(model, x, empty)
+    if x is None:
+        x, empty = _solve(model)
+    else:
+        x = np.asarray(x, dtype=np.float64)
+        empty = _empty_of(model, x) if empty is None else np.asarray(empty, dtype=np.float64)
     res = lna(model, x, empty=empty)
     laws = _Laws(model)
     flow = np.asarray(model.flow_weight, dtype=np.float64)
@@ -961,7 +949,8 @@ def flux_psd(model: Model, freqs: np.ndarray, *, x: np.ndarray | None = None,
         resp = np.linalg.solve(mats, np.broadcast_to(nu_r.T.astype(np.complex128),
                                                      (f.size,) + nu_r.T.shape))
         g += np.einsum("s,sa,far->fr", phi, proj, resp)
-    return 2.0 * (np.abs(g) ** 2 @ w)
+    return FluxLNA(mean=float(flow @ w), white=float(2.0 * (flow**2 @ w)),
+                   psd=2.0 * (np.abs(g) ** 2 @ w))
 
 
 # --------------------------------------------------------------------------------------------

@@ -8,7 +8,7 @@ Two readouts (``[readout] collection``):
 * ``"events"``: ``q`` times the flux of carriers crossing the collecting boundary (the
   channels with a ``flow`` weight in :mod:`grmc.model`: collection at an ohmic contact, and
   exchange with a ``[reservoir]``).  Its spectrum is the flux spectrum of
-  :func:`grmc.continuum.flux_psd` (linear noise) or of the master equation
+  :func:`grmc.continuum.flux_lna` (linear noise) or of the master equation
   (:func:`grmc.exact.flux_spectrum`): the shot noise of every crossing plus the G-R part and
   the correlation of each crossing with the count it changes.
 
@@ -94,12 +94,14 @@ def lna_current(model: Model, freqs: np.ndarray, *, smat: np.ndarray | None = No
     freqs : ndarray (F,)  Frequencies [Hz]
     smat : ndarray (S, S, F), optional  The count spectral matrix at ``freqs`` if already
         computed (:func:`grmc.continuum.lna_psd`) [count^2/Hz]
-    x : ndarray (S,), optional  The steady state [count]
+    x : ndarray (S,), optional  The steady state [count], for the drift current; a current
+        of crossing events is expanded about the solver's own steady state (which keeps
+        near-full trap levels' empty count exactly), solved once
     """
     q = ELEMENTARY_CHARGE_C
     if counts_events(model):
-        return CurrentTheory(q * continuum.flux_mean(model), q * q * continuum.flux_psd(model,
-                             freqs), q * q * continuum.flux_white(model))
+        flux = continuum.flux_lna(model, freqs)  # its own steady state, with exact empty traps
+        return CurrentTheory(q * flux.mean, q * q * flux.psd, q * q * flux.white)
     readout = model.scenario.readout
     if smat is None:
         smat = continuum.lna_psd(model, freqs)
