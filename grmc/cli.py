@@ -64,7 +64,7 @@ def _default_output(scenario_path: str, suffix: str = "") -> Path:
 
 
 # ------------------------------------------------------------------------------ commands
-def cmd_inspect(args) -> int:
+def cmd_check(args) -> int:
     from .summary import format_summary, summarize
 
     scenario = load_scenario(args.scenario)
@@ -193,10 +193,10 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("-q", "--quiet", action="store_true", help="no table, no progress bar")
     p.set_defaults(func=cmd_run)
 
-    p = sub.add_parser("inspect", help="validate a scenario and show what it implies")
+    p = sub.add_parser("check", help="validate a scenario and show what it implies")
     p.add_argument("scenario", help="scenario file (TOML)")
     p.add_argument("--json", action="store_true", help="print one JSON object")
-    p.set_defaults(func=cmd_inspect)
+    p.set_defaults(func=cmd_check)
 
     p = sub.add_parser("plot", help="PNG figures of an output file")
     p.add_argument("file", help="output file (.nc) of run, exact or sweep")

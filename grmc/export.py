@@ -1,6 +1,6 @@
 """Noise spectra for circuit work: CSV tables and Verilog-A noise sources.
 
-From an output Dataset (interface.md section 3) this module writes
+From an output Dataset (docs/file-format.md) this module writes
 
 * a CSV table of one spectrum (the readout current, or the count of one species) with its
   95 % interval and the linear-noise line, under a ``#`` header that says what it is;
@@ -154,7 +154,7 @@ def spectrum_table(ds: Any, quantity: str | None = None) -> SpectrumTable:
 
     Parameters
     ----------
-    ds : xarray.Dataset or path  Output file contents (interface.md section 3)
+    ds : xarray.Dataset or path  Output file contents (docs/file-format.md)
     quantity : str, optional  "current" (needs ``current_psd``) or a species name; default
         "current" where the file has ``current_psd``, else "electrons"
 

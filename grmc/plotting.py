@@ -5,7 +5,7 @@ object interface (``matplotlib.figure.Figure``): no pyplot state, no GUI, PNGs t
 Agg renderer.  Every ``plot_*`` function takes ``ax=`` (a new figure when None) and returns
 the axes it drew on; to show a figure interactively pass an axes made with pyplot.
 
-Variables used (interface.md section 3), all optional except where a plot needs them:
+Variables used (docs/file-format.md), all optional except where a plot needs them:
 ``psd``, ``psd_low``, ``psd_high``, ``psd_lna`` (species, frequency); ``current_psd``,
 ``current_psd_lna`` (frequency), ``current_mean``; ``count_mean``, ``count_var``,
 ``count_continuum`` (species, t); ``event_rate`` (channel); and these additions:
@@ -266,7 +266,7 @@ def plot_histogram(ds: xr.Dataset, species: str, ax: Axes | None = None) -> Axes
     Notes
     -----
     A one-variable birth-death process with constant generation and first-order loss has a
-    Poisson stationary law (var = mean, physics.md); departures show the correlations the
+    Poisson stationary law (var = mean, docs/physics.md); departures show the correlations the
     other channels bring (e.g. a pair constraint narrows the law, Darvey, Ninham & Staff,
     J. Chem. Phys. 45, 2145, 1966).
     """

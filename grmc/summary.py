@@ -1,4 +1,4 @@
-"""``grmc inspect``: what a scenario means before anything is simulated.
+"""``grmc check``: what a scenario means before anything is simulated.
 
 Derived counts, the continuum steady state, linear-noise variances, time scales and the
 expected cost of a run, with warnings where the continuum answer cannot be trusted (mean
@@ -26,7 +26,7 @@ ROUNDING_TOLERANCE = 0.05
 
 
 def summarize(scenario: Scenario) -> dict:
-    """Everything ``grmc inspect`` reports, as a JSON-ready dict.
+    """Everything ``grmc check`` reports, as a JSON-ready dict.
 
     Returns
     -------

@@ -53,7 +53,7 @@ BAD_CASES = [
 
 
 @pytest.mark.parametrize("name, edit, where", BAD_CASES, ids=[c[0] for c in BAD_CASES])
-@pytest.mark.parametrize("command", ["inspect", "run"])
+@pytest.mark.parametrize("command", ["check", "run"])
 def test_bad_scenario_exits_2_naming_the_key(tmp_path, capsys, name, edit, where, command):
     path = _write(tmp_path, GOOD.replace(*edit, 1))
     out = tmp_path / "out.nc"
@@ -67,17 +67,17 @@ def test_bad_scenario_exits_2_naming_the_key(tmp_path, capsys, name, edit, where
 
 def test_not_toml_and_missing_file(tmp_path, capsys):
     path = _write(tmp_path, "title = [unclosed\n")
-    assert main(["inspect", str(path)]) == 2
+    assert main(["check", str(path)]) == 2
     err = capsys.readouterr().err
     assert "not valid TOML" in err and str(path) in err
-    assert main(["inspect", str(tmp_path / "nope.toml")]) == 2
+    assert main(["check", str(tmp_path / "nope.toml")]) == 2
     err = capsys.readouterr().err
     assert "no such file" in err and "nope.toml" in err
 
 
 def test_bad_scenario_in_a_fresh_process_has_no_traceback(tmp_path):
     path = _write(tmp_path, GOOD.replace("acceptors_cm3", "acceptor_cm3"))
-    proc = subprocess.run([sys.executable, "-m", "grmc", "inspect", str(path)],
+    proc = subprocess.run([sys.executable, "-m", "grmc", "check", str(path)],
                           capture_output=True, text=True, timeout=120)
     assert proc.returncode == 2
     assert "[material] acceptor_cm3" in proc.stderr and "did you mean" in proc.stderr
@@ -99,9 +99,9 @@ def test_help_imports_nothing_heavy():
     assert proc.stdout.strip() == "[]", proc.stdout + proc.stderr
 
 
-def test_inspect_json_has_the_contract_keys(tmp_path, capsys):
+def test_check_json_has_the_contract_keys(tmp_path, capsys):
     path = _write(tmp_path, GOOD)
-    assert main(["inspect", str(path), "--json"]) == 0
+    assert main(["check", str(path), "--json"]) == 0
     info = json.loads(capsys.readouterr().out)
     for key in ("volume_cm3", "species", "steady_continuum", "var_lna", "counts"):
         assert key in info
@@ -190,7 +190,7 @@ def test_demo_end_to_end(tmp_path, capsys):
 @pytest.mark.parametrize("path", sorted(Path(__file__).resolve().parents[1]
                                         .joinpath("scenarios").glob("*.toml")),
                          ids=lambda p: p.stem)
-def test_bundled_scenarios_inspect(path, capsys):
-    """Every bundled scenario is valid and `inspect` explains it."""
-    assert main(["inspect", str(path)]) == 0
+def test_bundled_scenarios_check(path, capsys):
+    """Every bundled scenario is valid and `check` explains it."""
+    assert main(["check", str(path)]) == 0
     assert "relaxation times" in capsys.readouterr().out

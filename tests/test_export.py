@@ -34,7 +34,7 @@ hole_mobility_cm2_Vs = 450.0
 
 
 def make_dataset(*, noisy: bool = True, current: bool = True, seed: int = 0) -> xr.Dataset:
-    """A small output Dataset with interface.md names: Lorentzian spectra (van Vliet) with
+    """A small output Dataset with docs/file-format.md names: Lorentzian spectra (van Vliet) with
     chi^2_{2K}/2K scatter and Welch intervals."""
     rng = np.random.default_rng(seed)
     t_seg, n_freq = 1e-5, 1024

@@ -1,6 +1,6 @@
 """Tests of grmc.plotting: every figure is written as a valid PNG of sensible size.
 
-The synthetic Dataset uses the interface.md names: Lorentzian spectra (van Vliet, Proc. IRE
+The synthetic Dataset uses the docs/file-format.md names: Lorentzian spectra (van Vliet, Proc. IRE
 46, 1004, 1958, from memory) with Welch chi-squared intervals (IEEE Trans. Audio
 Electroacoust. 15, 70, 1967), a transient relaxing exponentially toward the steady state
 (low-injection decay, common practice), Poisson/binomial count histograms.
@@ -131,7 +131,7 @@ def test_functions_take_and_return_ax():
 
 
 def test_import_is_lazy():
-    # architecture.md: importing the module imports neither matplotlib nor xarray
+    # DEVELOPERS.md: importing the module imports neither matplotlib nor xarray
     code = ("import sys, grmc.plotting, grmc.export, grmc.spectra; "
             "print('matplotlib' in sys.modules, 'xarray' in sys.modules)")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,

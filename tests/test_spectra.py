@@ -111,7 +111,7 @@ def t_crit(n_traj: int, n_checks: int = 1, alpha: float = 1e-3) -> float:
 
 # --------------------------------------------------------------------------------------------
 def test_welch_interval_k16():
-    # physics.md and Welch (1967): K = 16 -> [0.647, 1.750] S_hat
+    # docs/physics.md and Welch (1967): K = 16 -> [0.647, 1.750] S_hat
     low, high = sp.welch_interval(1.0, 16)
     assert low == pytest.approx(0.647, abs=5e-4)
     assert high == pytest.approx(1.750, abs=5e-4)
@@ -220,7 +220,7 @@ def test_unbiased_near_sampling_limit():
 
 
 def test_slow_lorentzian_within_one_percent():
-    # interface.md contract: within 1 % below fs/5.  Telegraph corner fs/20 << fs
+    # docs/file-format.md contract: within 1 % below fs/5.  Telegraph corner fs/20 << fs
     # (Machlup 1954); T_seg = 16384 samples so leakage tau/T_seg = 0.02 %; aliasing < 1e-5.
     # K = 32 x 4 = 128 segments with ~3277 values each below fs/5: 1/sqrt(n K) = 0.15 %.
     # The standard error actually used is the trajectory spread (see band_mean); the check
@@ -264,7 +264,7 @@ def test_rectangular_window_leakage_formula():
 
 
 def test_parseval():
-    # Parseval (physics.md): sum(P) df over the reported band equals the variance of the
+    # Parseval (docs/physics.md): sum(P) df over the reported band equals the variance of the
     # fine-bin averages minus their power above fs/2.  For a telegraph corner at fs/20 the
     # expected discrepancy is about -5 % (Machlup's spectrum above fs/2, as seen through
     # the bin average).  Computed here exactly: numerator sum_j S(f_j) W(f_j) df (eq. (3)
@@ -429,7 +429,7 @@ def test_current_from_matrix_and_scale():
 
 
 def test_closed_forms_agree():
-    # physics.md: photoconductor G-R noise 4 q G I / (1 + (2 pi f tau)^2) equals
+    # docs/physics.md: photoconductor G-R noise 4 q G I / (1 + (2 pi f tau)^2) equals
     # 4 I^2 tau / (N_0 (1 + ...)) when var = N_0, i.e. van Vliet's Lorentzian times the
     # squared current per carrier (van Vliet, Proc. IRE 46, 1004, 1958, from memory).
     q = sp.ELEMENTARY_CHARGE_C
@@ -440,7 +440,7 @@ def test_closed_forms_agree():
         sp.photoconductor_gr_psd(f, current, tau / t_tr, tau),
         (q / t_tr) ** 2 * sp.lorentzian(f, n0, tau), rtol=1e-12)
     # Machlup's telegraph spectrum is a Lorentzian with 1/tau = 1/tau_1 + 1/tau_0 and
-    # variance tau_1 tau_0 / (tau_1 + tau_0)^2 (physics.md)
+    # variance tau_1 tau_0 / (tau_1 + tau_0)^2 (docs/physics.md)
     t1, t0 = 2e-6, 3e-6
     np.testing.assert_allclose(
         sp.telegraph_psd(f, t1, t0, delta=2.0),
