@@ -332,17 +332,25 @@ def _curve_lines(ds: Any, tab: SpectrumTable, cur: ExportCurve) -> list[str]:
     return lines + _band_noise_lines(ds, tab)
 
 
-def _prepare(ds: Any, quantity: str | None, source: str | None,
-             band: tuple[float, float]) -> tuple[Any, SpectrumTable, ExportCurve]:
+def _prepare(ds: Any, quantity: str | None, source: str | None, band: tuple[float, float],
+             current_for: str = "") -> tuple[Any, SpectrumTable, ExportCurve]:
+    """The file, its spectrum and the exported curve; ``current_for`` names a format that
+    needs a current (refused for a count first)."""
     ds = _open(ds)
     tab = spectrum_table(ds, quantity)
+    if current_for and not tab.is_current:
+        raise ExportOptionError(
+            "--quantity", f"{tab.quantity!r} is a count spectrum [counts^2/Hz], not a current: "
+            f"a {current_for} noise source needs A^2/Hz (add a [readout] to the scenario), or "
+            "export the counts as CSV")
     return ds, tab, export_curve(ds, tab, source=source, band=band)
 
 
 def _csv_rows(tab: SpectrumTable, cur: ExportCurve, points_per_decade: int):
     """Frequencies of the CSV: the file's own inside the band, a log grid outside the
     simulated band; and whether each row is simulated."""
-    f_file = tab.frequency[(tab.frequency >= cur.band[0]) & (tab.frequency <= cur.band[1])]
+    lo, hi = cur.band[0] * (1 - 1e-12), cur.band[1] * (1 + 1e-12)  # rounding of f = j/T
+    f_file = tab.frequency[(tab.frequency >= lo) & (tab.frequency <= hi)]
     grid = _log_grid(cur.band[0], cur.band[1], points_per_decade)
     f_ext = grid[~cur.is_simulated(grid)]
     f = np.concatenate([f_file, f_ext])
@@ -482,14 +490,6 @@ def resample_spectrum(
     return grid, 10.0**y
 
 
-def _current_only(tab: SpectrumTable, what: str) -> None:
-    if not tab.is_current:
-        raise ExportOptionError(
-            "--quantity", f"{tab.quantity!r} is a count spectrum [counts^2/Hz], not a current: "
-            f"a {what} noise source needs A^2/Hz (add a [readout] to the scenario), or export "
-            "the counts as CSV")
-
-
 def _module_name(name: str | None, stem: str) -> str:
     if name is not None:
         if not _IDENTIFIER.match(name) or name in _KEYWORDS:
@@ -581,8 +581,7 @@ def export_verilog_a(
     if va_path.suffix == ".tbl":
         raise ValueError("give the .va file name; the .tbl is written next to it")
     name = _module_name(module_name, va_path.stem)
-    ds, tab, cur = _prepare(ds, quantity, source, band)
-    _current_only(tab, "Verilog-A")
+    ds, tab, cur = _prepare(ds, quantity, source, band, current_for="Verilog-A")
     tbl_path = va_path.with_suffix(".tbl")
     f = _log_grid(cur.band[0], cur.band[1], points_per_decade)
     s = cur(f)
@@ -654,8 +653,7 @@ def export_spice(
     """
     path = Path(path)
     name = spice_name(name if name is not None else path.stem)
-    ds, tab, cur = _prepare(ds, quantity, source, band)
-    _current_only(tab, "SPICE")
+    ds, tab, cur = _prepare(ds, quantity, source, band, current_for="SPICE")
     spec, note = _rational_for_spice(cur)
     head = _header_lines(tab) + _curve_lines(ds, tab, cur) + [
         f"circuit spectrum: {spec.describe()} [A^2/Hz]",
