@@ -17,7 +17,7 @@ import numpy as np
 import pytest
 
 import grmc
-from grmc import bandnoise, spectra
+from grmc import bandnoise, dataset, spectra
 from grmc.cli import main
 from grmc.exact_output import exact_dataset
 from grmc.report import format_run_table
@@ -98,7 +98,7 @@ def test_exact_file_band_noise():
     assert list(ds.current_noise_rms.attrs["band_Hz"]) == [1e5, 1e7]
 
 
-def test_run_file_band_noise_and_table():
+def test_run_file_band_noise_and_table(tmp_path):
     # grmc run: the band rms of the Monte Carlo current with its 95 % interval, which covers
     # the linear-noise value (the demo pixel's linear-noise spectrum is within 0.6 % of its
     # exact master-equation spectrum, measured with grmc exact: far inside the interval of 16
@@ -114,3 +114,9 @@ def test_run_file_band_noise_and_table():
     assert lo <= float(ds.current_noise_rms_lna) <= hi
     table = format_run_table(ds)
     assert "rms noise over 1e+05 .. 1e+07 Hz" in table and "linear noise" in table
+    # registered variables, the band as an attribute: the file passes the CF checks
+    from test_run import _cf_errors
+
+    path = dataset.save(ds, tmp_path / "band.nc")
+    assert _cf_errors(path) == []
+    assert dataset.load(path)["current_noise_rms"].attrs["units"] == "A"

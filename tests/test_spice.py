@@ -185,3 +185,26 @@ def _stated_spectrum(text: str) -> rational.RationalSpectrum:
     terms = re.findall(r"([-+]\S+) / \(1 \+ \(f/(\S+) Hz\)\^2\)", line)
     return rational.RationalSpectrum(white, [float(t[1]) for t in terms],
                                      [float(t[0]) for t in terms])
+
+
+def test_bad_requests_exit_2_naming_the_option(files, tmp_path, capsys):
+    out = tmp_path / "x.cir"
+    cases = [
+        # a count is not a current: no SPICE current source from it
+        (["--quantity", "electrons"], "--quantity"),
+        # beyond what any source of the file holds
+        (["--band", "1:1e13"], "--band"),
+        (["--band", "1e6:1e3"], "--band"),
+        (["--band", "wide"], "--band"),
+    ]
+    for extra, option in cases:
+        argv = ["export", str(files["demo"]), "--format", "spice", "-o", str(out), *extra]
+        assert main(argv) == 2
+        err = capsys.readouterr().err.strip()
+        assert option in err and str(files["demo"]) in err and "Traceback" not in err
+        assert len(err.splitlines()) == 1
+    # an exact solution holds no Lorentzian fit
+    assert main(["export", str(files["junction"]), "--format", "spice", "--source", "fit",
+                 "-o", str(out)]) == 2
+    assert "--source" in capsys.readouterr().err
+    assert not out.exists() and list(tmp_path.iterdir()) == []
