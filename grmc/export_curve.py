@@ -193,14 +193,14 @@ def lna_theory(ds: Any, quantity: str
     text = ds.attrs.get("scenario_toml")
     if not isinstance(text, str):
         return None
-    from .continuum import lna_psd
+    from .continuum import ContinuumError, lna_psd
     from .model import build_model
     from .readout import lna_current
     from .scenario import ScenarioError, load_scenario
 
     try:
         model = build_model(load_scenario(text=text))
-    except (ScenarioError, ValueError):
+    except (ScenarioError, ValueError, ContinuumError):
         return None
     if quantity == "current":
         if model.scenario.readout is None:
@@ -215,6 +215,8 @@ def lna_theory(ds: Any, quantity: str
            "the scenario text stored in the file")
     try:
         spec = lna_rational(model, quantity)
+    except ContinuumError:  # no steady state to expand about: no theory to export
+        return None
     except ValueError as exc:
         return direct, None, how + f" (not a sum of Lorentzians: {exc})"
     return spec, spec, how + ": " + spec.describe()
@@ -252,7 +254,10 @@ def _loglog(f_ref: np.ndarray, s_ref: np.ndarray) -> Callable[[np.ndarray], np.n
 def _choose(ds: Any, tab, source: str | None, species: list[str]):
     """(source, fit, theory) with the default rule, or refuse the requested source."""
     fit = stored_fit(ds, tab.quantity, species)
-    theory = lna_theory(ds, tab.quantity)
+    # the theory is recomputed only where it is used: the source, the default without a fit,
+    # or the tails of the estimate without a fit
+    theory = None if (fit is not None and source in (None, "fit", "mc")) else lna_theory(
+        ds, tab.quantity)
     if source is None:
         source = "fit" if fit is not None else ("lna" if theory is not None else "mc")
     if source not in SOURCES:

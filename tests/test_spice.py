@@ -27,7 +27,7 @@ from scipy import signal
 import grmc
 from grmc import dataset, rational, spice
 from grmc.cli import main
-from grmc.export import spectrum_table
+from grmc.export import read_noise_table, spectrum_table
 from grmc.export_curve import export_curve
 from grmc.exact_output import exact_dataset
 from grmc.model import ELEMENTARY_CHARGE_C
@@ -208,3 +208,36 @@ def test_bad_requests_exit_2_naming_the_option(files, tmp_path, capsys):
                  "-o", str(out)]) == 2
     assert "--source" in capsys.readouterr().err
     assert not out.exists() and list(tmp_path.iterdir()) == []
+
+
+def test_verilog_a_and_csv_of_real_files(files, tmp_path):
+    # Verilog-A of the demo run over the default band: the table read back with the parser
+    # keeps the LRM 2.4 section 4.6.4.3 rules (pairs, frequencies ascending and unique, PSD
+    # >= 0, Hz and A^2/Hz stated) and holds the exported curve (the stored fit) at 1 Hz and
+    # 100 GHz, far outside the simulated band
+    va = tmp_path / "demo.va"
+    assert main(["export", str(files["demo"]), "--format", "verilog-a", "-o", str(va)]) == 0
+    f, s = read_noise_table(va)
+    assert np.all(np.diff(f) > 0) and np.all(s >= 0) and f.size == 11 * 20 + 1
+    assert f[0] == pytest.approx(1.0) and f[-1] == pytest.approx(1e11)
+    cur = _curve(files["demo"])
+    np.testing.assert_allclose(s, cur(f), rtol=1e-9)
+    text = va.read_text()
+    assert "(frequency [Hz], PSD [A^2/Hz]) pairs" in text and "source: fit" in text
+    assert "largest deviation of the exported curve from the Monte Carlo estimate" in text
+    # CSV of the dark junction's exact file: simulated rows carry the exact spectrum,
+    # extended rows the linear-noise curve, which falls towards low frequency
+    csv = tmp_path / "dark.csv"
+    assert main(["export", str(files["dark"]), "--format", "csv", "-o", str(csv)]) == 0
+    lines = csv.read_text().splitlines()
+    rows = [ln.split(",") for ln in lines if not ln.startswith("#")]
+    head, body = rows[0], rows[1:]
+    assert head == ["frequency_Hz", "psd", "psd_low", "psd_high", "psd_lna", "psd_export",
+                    "region"]
+    region = np.array([r[-1] for r in body])
+    vals = np.array([[float(x) for x in r[:-1]] for r in body])
+    assert set(region) == {"simulated", "extended"}
+    ext = region == "extended"
+    assert np.all(np.isnan(vals[ext, 1])) and np.all(np.isfinite(vals[~ext, 1]))
+    np.testing.assert_allclose(vals[ext, 5], vals[ext, 4], rtol=1e-6)  # lna source = lna
+    assert vals[0, 5] < 0.5 * vals[-1, 5]  # 1 Hz well below the white level at 100 GHz
