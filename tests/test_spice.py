@@ -128,9 +128,10 @@ def test_lna_rational_reproduces_the_files_linear_noise(files):
 @needs_ngspice
 def test_rc_lorentzian_identity_in_ngspice(tmp_path):
     # ngspice's noise of the RC stage against g^2 4kTR / (1 + (2 pi f R C)^2) (Nyquist 1928)
-    # at T = 300.15 K (27 deg C).  ngspice's own Boltzmann constant (1.3806226e-23, from
-    # memory) differs from the SI value by 2e-5 and it prints 9 digits, so 1e-4 holds; the
-    # resistor at 300 K instead of 300.15 K would be off by 5e-4.
+    # at T = 300.15 K (27 deg C).  ngspice's output differs from this by 3.5e-7 at every
+    # point (measured; the ratio of the 2019 SI Boltzmann constant to the CODATA 2014 value
+    # 1.38064852e-23), so 1e-4 holds; the resistor at 300 K instead of 300.15 K would be off
+    # by 5e-4.
     spec = rational.RationalSpectrum(0.0, [1e6], [1e-24])
     path = tmp_path / "rc.cir"
     text = spice.subcircuit(spec, "rc", ["RC stage"])
