@@ -221,6 +221,51 @@ class Factor:
         return self.h0 + np.sum(self.residues / (s[..., None] + self.rates), axis=-1)
 
 
+def _secular_roots(q: np.ndarray, b: np.ndarray, c: float) -> np.ndarray:
+    """Roots x of N(x) = c prod (x + q_k) + sum_k b_k prod_{j != k} (x + q_j), c > 0.
+
+    N / D = c + sum_k b_k / (x + q_k) = c det(I + (xI + Q)^-1 b 1^T / c), so the roots are
+    the eigenvalues of -(Q + b 1^T / c) (a diagonal plus rank-one matrix; the matrix
+    determinant lemma).  Corners spread over many decades leave the small eigenvalues
+    inaccurate, so they are refined together by Aberth's iteration on N, with
+    N'/N = g'/g + sum_k 1/(x + q_k), g = N/D (O. Aberth, Math. Comp. 27, 339, 1973).
+    """
+    r = np.linalg.eigvals(-(np.diag(q) + np.outer(b, np.ones_like(b)) / c)).astype(complex)
+    # a conjugate pair of starting values stays conjugate under the iteration and could
+    # never split onto two real roots: break the symmetry (deterministically)
+    r = r * (1.0 + 1e-3j * np.arange(1, r.size + 1) / r.size)
+    for _ in range(500):
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+            d = r[:, None] + q
+            g = c + np.sum(b / d, axis=1)
+            ratio = -np.sum(b / d**2, axis=1) / g + np.sum(1.0 / d, axis=1)
+            step = 1.0 / ratio
+            diff = r[:, None] - r[None, :]
+            np.fill_diagonal(diff, np.inf)
+            corr = step / (1.0 - step * np.sum(1.0 / diff, axis=1))
+        corr = np.where(np.isfinite(corr), corr, 0.0)
+        r = r - corr
+        if np.all(np.abs(corr) <= 1e-15 * np.abs(r)):
+            break
+    return r
+
+
+def _polynomial_roots(q: np.ndarray, b: np.ndarray) -> tuple[np.ndarray, float]:
+    """Roots and leading coefficient of N(x) = sum_k b_k prod_{j != k} (x + q_j) (no white
+    level; a polynomial of low degree in the scaled variable)."""
+    P = np.polynomial.Polynomial
+    num = P([0.0])
+    for k in range(q.size):
+        num = num + b[k] * P.fromroots(np.delete(-q, k))
+    coef = num.coef
+    while coef.size > 1 and abs(coef[-1]) <= 1e-14 * np.max(np.abs(coef)):
+        coef = coef[:-1]
+    if not coef[-1] > 0:
+        raise ValueError("the spectrum is not positive at high frequencies")
+    roots = P(coef).roots().astype(complex) if coef.size > 1 else np.zeros(0, complex)
+    return roots, float(coef[-1])
+
+
 def spectral_factor(spec: RationalSpectrum) -> Factor:
     """Minimum-phase factor ``H`` of a rational spectrum: ``|H(i 2 pi f)|^2 = S(f)``.
 
@@ -241,7 +286,9 @@ def spectral_factor(spec: RationalSpectrum) -> Factor:
     -----
     With x = (w / w0)^2, p_k = w_k / w0 (w0 the geometric mean of the poles, for a
     well-scaled polynomial), ``S = N(x) / D(x)``, ``D = prod (x + p_k^2)`` and
-    ``N = c D + sum_k a_k p_k^2 prod_{j != k} (x + p_j^2)``.  A root r of N gives the zero
+    ``N = c D + sum_k a_k p_k^2 prod_{j != k} (x + p_j^2)``, whose roots are found as the
+    eigenvalues of a diagonal plus rank-one matrix refined by Aberth's iteration (c > 0,
+    :func:`_secular_roots`) or as polynomial roots (c = 0).  A root r of N gives the zero
     ``z = -sqrt(-r)`` (the left half-plane one of the pair +-sqrt(-r)); then
     ``H(s) = sqrt(n_lead) prod (s/w0 - z_i) / prod (s/w0 + p_k)``, whose magnitude squared on
     the imaginary axis is N/D, with every pole and zero in the closed left half-plane
@@ -252,27 +299,19 @@ def spectral_factor(spec: RationalSpectrum) -> Factor:
     if w.size == 0:
         return Factor(math.sqrt(spec.white), w, np.zeros(0), np.zeros(0))
     w0 = float(np.exp(np.mean(np.log(w))))
-    p2 = (w / w0) ** 2
-    P = np.polynomial.Polynomial
-    den = P.fromroots(-p2)
-    num = spec.white * den
-    for k, a in enumerate(spec.amplitudes):
-        num = num + a * p2[k] * P.fromroots(np.delete(-p2, k))
-    coef = num.coef
-    while coef.size > 1 and abs(coef[-1]) <= 1e-14 * np.max(np.abs(coef)):
-        coef = coef[:-1]
-    lead = float(coef[-1])
-    if not lead > 0:
-        raise ValueError("the spectrum is not positive at high frequencies")
-    roots = P(coef).roots() if coef.size > 1 else np.zeros(0)
-    zeros = -np.sqrt(-roots.astype(complex))
-    gain = math.sqrt(lead)
     p = w / w0
+    b = spec.amplitudes * p**2
+    if spec.white > 0:
+        roots, lead = _secular_roots(p**2, b, spec.white), spec.white
+    else:
+        roots, lead = _polynomial_roots(p**2, b)
+    zeros = -np.sqrt(-roots)
+    gain = math.sqrt(lead)
     residues = np.empty(w.size)
     for k in range(w.size):
         val = gain * np.prod(-p[k] - zeros) / np.prod(np.delete(p, k) - p[k])
         residues[k] = val.real
-    h0 = gain if coef.size - 1 == w.size else 0.0
+    h0 = gain if spec.white > 0 else 0.0
     fac = Factor(h0, w, residues * w0, zeros * w0)
     f = np.logspace(math.log10(spec.corners[0]) - 3, math.log10(spec.corners[-1]) + 3, 601)
     ref = spec(f)

@@ -107,6 +107,28 @@ def test_spectral_factor_against_scipy():
     np.testing.assert_allclose(ratio / ratio[0], 1.0, rtol=1e-8)
 
 
+def test_spectral_factor_over_many_decades():
+    # positive rational spectra with up to seven corners spread over eleven decades and
+    # plateaus of both signs (fixed seed): |H|^2 equals the closed form everywhere, zeros and
+    # poles in the left half-plane; a white level of 0 (no shot noise) too
+    rng = np.random.default_rng(5)
+    checked = 0
+    while checked < 25:
+        k = int(rng.integers(2, 8))
+        spec = rational.RationalSpectrum(float(rng.choice([0.0, 1.0])),
+                                         np.sort(10 ** rng.uniform(0, 11, k)),
+                                         rng.uniform(-1, 1, k) * 3)
+        f = np.logspace(-3, 14, 700)
+        if spec.white == 0 and np.any(spec.amplitudes[-1:] <= 0):
+            continue  # no white level: the fastest plateau must be > 0 for S > 0 at high f
+        if np.min(spec(f)) <= 1e-6 * np.max(np.abs(spec(f))):
+            continue  # not a positive spectrum: no factor exists
+        fac = rational.spectral_factor(spec)
+        np.testing.assert_allclose(np.abs(fac(f)) ** 2, spec(f), rtol=1e-8)
+        assert np.all(fac.zeros.real <= 0)
+        checked += 1
+
+
 def test_lna_rational_reproduces_the_files_linear_noise(files):
     # the rational form recomputed from the scenario text equals the file's current_psd_lna
     # (same theory, grmc.readout), to the check tolerance of lna_rational
