@@ -221,19 +221,42 @@ class Factor:
         return self.h0 + np.sum(self.residues / (s[..., None] + self.rates), axis=-1)
 
 
-def _secular_roots(q: np.ndarray, b: np.ndarray, c: float) -> np.ndarray:
-    """Roots x of N(x) = c prod (x + q_k) + sum_k b_k prod_{j != k} (x + q_j), c > 0.
+def _secular_roots(q: np.ndarray, b: np.ndarray, c: float) -> tuple[np.ndarray, float]:
+    """Roots x and leading coefficient of
+    N(x) = c prod (x + q_k) + sum_k b_k prod_{j != k} (x + q_j).
 
-    N / D = c + sum_k b_k / (x + q_k) = c det(I + (xI + Q)^-1 b 1^T / c), so the roots are
-    the eigenvalues of -(Q + b 1^T / c) (a diagonal plus rank-one matrix; the matrix
-    determinant lemma).  Corners spread over many decades leave the small eigenvalues
-    inaccurate, so they are refined together by Aberth's iteration on N, with
-    N'/N = g'/g + sum_k 1/(x + q_k), g = N/D (O. Aberth, Math. Comp. 27, 339, 1973).
+    N / D = g(x) = c + sum_k b_k / (x + q_k).  For c > 0, g = c det(I + (xI + Q)^-1 b 1^T / c),
+    so the roots are the eigenvalues of -(Q + b 1^T / c) (a diagonal plus rank-one matrix;
+    the matrix determinant lemma).  For c = 0 they are the finite eigenvalues of the pencil
+    x [[I, 0], [0, 0]] + [[Q, b], [1^T, 0]] (bordered matrix), K - 1 of them when
+    sum_k b_k != 0.  Corners spread over many decades leave the small eigenvalues
+    inaccurate, so all are refined together by Aberth's iteration on N, with
+    N'/N = g'/g + sum_k 1/(x + q_k) (O. Aberth, Math. Comp. 27, 339, 1973).
     """
-    r = np.linalg.eigvals(-(np.diag(q) + np.outer(b, np.ones_like(b)) / c)).astype(complex)
+    if c > 0:
+        r = np.linalg.eigvals(-(np.diag(q) + np.outer(b, np.ones_like(b)) / c))
+        lead = c
+    else:
+        from scipy.linalg import eigvals
+
+        lead = float(np.sum(b))
+        if not lead > 1e-12 * float(np.sum(np.abs(b))):
+            raise ValueError("the spectrum without a white level is not positive at high "
+                             "frequencies, or falls faster than 1/f^2")
+        n = q.size
+        a = np.zeros((n + 1, n + 1))
+        a[:n, :n] = -np.diag(q)
+        a[:n, n] = -b
+        a[n, :n] = -1.0
+        m = np.zeros((n + 1, n + 1))
+        m[:n, :n] = np.eye(n)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            r = eigvals(a, m)
+        r = r[np.isfinite(r)]
+        r = r[np.argsort(np.abs(r))][: n - 1]
     # a conjugate pair of starting values stays conjugate under the iteration and could
     # never split onto two real roots: break the symmetry (deterministically)
-    r = r * (1.0 + 1e-3j * np.arange(1, r.size + 1) / r.size)
+    r = r.astype(complex) * (1.0 + 1e-3j * np.arange(1, r.size + 1) / max(r.size, 1))
     for _ in range(500):
         with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
             d = r[:, None] + q
@@ -247,23 +270,7 @@ def _secular_roots(q: np.ndarray, b: np.ndarray, c: float) -> np.ndarray:
         r = r - corr
         if np.all(np.abs(corr) <= 1e-15 * np.abs(r)):
             break
-    return r
-
-
-def _polynomial_roots(q: np.ndarray, b: np.ndarray) -> tuple[np.ndarray, float]:
-    """Roots and leading coefficient of N(x) = sum_k b_k prod_{j != k} (x + q_j) (no white
-    level; a polynomial of low degree in the scaled variable)."""
-    P = np.polynomial.Polynomial
-    num = P([0.0])
-    for k in range(q.size):
-        num = num + b[k] * P.fromroots(np.delete(-q, k))
-    coef = num.coef
-    while coef.size > 1 and abs(coef[-1]) <= 1e-14 * np.max(np.abs(coef)):
-        coef = coef[:-1]
-    if not coef[-1] > 0:
-        raise ValueError("the spectrum is not positive at high frequencies")
-    roots = P(coef).roots().astype(complex) if coef.size > 1 else np.zeros(0, complex)
-    return roots, float(coef[-1])
+    return r, lead
 
 
 def spectral_factor(spec: RationalSpectrum) -> Factor:
@@ -287,8 +294,8 @@ def spectral_factor(spec: RationalSpectrum) -> Factor:
     With x = (w / w0)^2, p_k = w_k / w0 (w0 the geometric mean of the poles, for a
     well-scaled polynomial), ``S = N(x) / D(x)``, ``D = prod (x + p_k^2)`` and
     ``N = c D + sum_k a_k p_k^2 prod_{j != k} (x + p_j^2)``, whose roots are found as the
-    eigenvalues of a diagonal plus rank-one matrix refined by Aberth's iteration (c > 0,
-    :func:`_secular_roots`) or as polynomial roots (c = 0).  A root r of N gives the zero
+    eigenvalues of a diagonal plus rank-one (c > 0) or bordered (c = 0) matrix, refined by
+    Aberth's iteration (:func:`_secular_roots`).  A root r of N gives the zero
     ``z = -sqrt(-r)`` (the left half-plane one of the pair +-sqrt(-r)); then
     ``H(s) = sqrt(n_lead) prod (s/w0 - z_i) / prod (s/w0 + p_k)``, whose magnitude squared on
     the imaginary axis is N/D, with every pole and zero in the closed left half-plane
@@ -301,10 +308,7 @@ def spectral_factor(spec: RationalSpectrum) -> Factor:
     w0 = float(np.exp(np.mean(np.log(w))))
     p = w / w0
     b = spec.amplitudes * p**2
-    if spec.white > 0:
-        roots, lead = _secular_roots(p**2, b, spec.white), spec.white
-    else:
-        roots, lead = _polynomial_roots(p**2, b)
+    roots, lead = _secular_roots(p**2, b, spec.white)
     zeros = -np.sqrt(-roots)
     gain = math.sqrt(lead)
     residues = np.empty(w.size)
