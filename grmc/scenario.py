@@ -227,6 +227,8 @@ class Readout:
         events per second, so it carries the shot noise of collection as well.  The ohmic
         contacts keep the volume neutral: a carrier leaving through one contact is replaced
         by one entering through the other, so the counts do not change.
+    band_Hz : (float, float) or None  Readout band [f1, f2]: the output gets the rms noise
+        current over it (``current_noise_rms``) [Hz]
     """
 
     bias_V: float
@@ -234,6 +236,7 @@ class Readout:
     electron_mobility_cm2_Vs: float
     hole_mobility_cm2_Vs: float
     collection: Literal["mean", "events"] = "mean"
+    band_Hz: tuple[float, float] | None = None
 
     def transit_times(self) -> tuple[float, float]:
         """(t_tr,n, t_tr,p) = L^2 / (mu bias) [s]; inf where a mobility or the bias is 0."""
@@ -321,7 +324,7 @@ class Scenario:
 
 @dataclass(frozen=True)
 class _Key:
-    kind: str  # "float", "int", "str", "list3"
+    kind: str  # "float", "int", "str", "list3", "floatlist", "band"
     required: bool = False
     default: Any = None
     lo: float | None = None  # lower bound
@@ -391,6 +394,7 @@ _READOUT = {
     "electron_mobility_cm2_Vs": _F(required=True, lo=0.0),
     "hole_mobility_cm2_Vs": _F(required=True, lo=0.0),
     "collection": _S(default="mean", choices=("mean", "events")),
+    "band_Hz": _Key("band"),
 }
 _RESERVOIR = {
     "carrier": _S(required=True, choices=("electrons", "holes")),
@@ -457,6 +461,14 @@ def _check_value(src: str, section: str, key: str, value: Any, spec: _Key) -> An
                 fail(f"every value must be > 0, got {v!r}")
             out.append(float(v))
         return tuple(sorted(out))
+    elif spec.kind == "band":
+        if (not isinstance(value, list) or len(value) != 2
+                or any(isinstance(v, bool) or not isinstance(v, (int, float)) for v in value)):
+            fail(f"expected a list of two frequencies [f1, f2], got {value!r}")
+        f1, f2 = (float(v) for v in value)
+        if not (math.isfinite(f1) and math.isfinite(f2) and 0 < f1 < f2):
+            fail(f"must be two finite frequencies with 0 < f1 < f2, got {value!r}")
+        return (f1, f2)
     elif spec.kind == "list3":
         if not isinstance(value, list) or len(value) != 3:
             fail(f"expected a list of three edge lengths, got {value!r}")
