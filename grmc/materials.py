@@ -229,10 +229,15 @@ def hgcdte_intrinsic_density(x: float, temperature_K: float) -> float:
     ----------
     G. L. Hansen and J. L. Schmit, J. Appl. Phys. 54, 1639 (1983).
     """
-    t = temperature_K
+    return math.exp(_hgcdte_log_ni(x, temperature_K))
+
+
+def _hgcdte_log_ni(x: float, t: float) -> float:
+    """ln n_i of :func:`hgcdte_intrinsic_density` (finite where n_i itself underflows)."""
     gap = hgcdte_gap(x, t)
     pre = (5.585 - 3.82 * x + 1.753e-3 * t - 1.364e-3 * x * t) * 1e14
-    return pre * gap**0.75 * t**1.5 * math.exp(-gap / (2.0 * BOLTZMANN_EV_K * t))
+    return (math.log(pre) + 0.75 * math.log(gap) + 1.5 * math.log(t)
+            - gap / (2.0 * BOLTZMANN_EV_K * t))
 
 
 def silicon_intrinsic_density(temperature_K: float) -> float:
@@ -367,8 +372,9 @@ class _Collector:
 
     def check_range(self, what: str, value: float, lo: float, hi: float, unit: str) -> None:
         if not lo <= value <= hi:
-            self.warnings.append(f"{what} is fitted for {lo:g} to {hi:g} {unit}; "
-                                 f"{value:g} {unit} is outside that range")
+            u = f" {unit}" if unit else ""
+            span = f"above {lo:g}{u}" if math.isinf(hi) else f"for {lo:g} to {hi:g}{u}"
+            self.warnings.append(f"{what} is fitted {span}; {value:g}{u} is outside that range")
 
 
 def _binary(name: str, t: float) -> tuple[_Collector, float, float]:
@@ -444,7 +450,7 @@ def _hgcdte_masses(gap: float) -> tuple[float, float]:
     return 1.0 / inv, 0.55
 
 
-def _hgcdte_recombination(x: float, t: float, gap: float, ni: float, me: float, mh: float
+def _hgcdte_recombination(x: float, t: float, gap: float, me: float, mh: float
                           ) -> tuple[float, float, float]:
     """B [cm^3/s], C_n and C_p [cm^6/s] of HgCdTe (Rogalski 2005, from memory).
 
@@ -462,10 +468,11 @@ def _hgcdte_recombination(x: float, t: float, gap: float, ni: float, me: float, 
     kt = BOLTZMANN_EV_K * t
     mu = me / mh
     f1f2 = 0.2
-    tau_a1 = (3.8e-18 * eps**2 * math.sqrt(1 + mu) * (1 + 2 * mu)
-              * math.exp((1 + 2 * mu) / (1 + mu) * gap / kt)
-              / (me * f1f2**2 * (kt / gap) ** 1.5))
-    cn = 1.0 / (2.0 * ni * ni * tau_a1)
+    log_tau_a1 = (math.log(3.8e-18 * eps**2 * math.sqrt(1 + mu) * (1 + 2 * mu)
+                           / (me * f1f2**2 * (kt / gap) ** 1.5))
+                  + (1 + 2 * mu) / (1 + mu) * gap / kt)
+    # C_n = 1 / (2 n_i^2 tau_A1), in logarithms: both factors over- or underflow when cold
+    cn = math.exp(-math.log(2.0) - 2.0 * _hgcdte_log_ni(x, t) - log_tau_a1)
     return b, cn, cn / 20.0
 
 
@@ -491,7 +498,7 @@ def _hgcdte(x: float, t: float) -> tuple[_Collector, float, float]:
     c.put("hole_mobility_cm2_Vs", 0.01 * mu_e, f"1 % of the electron mobility, {_ROGALSKI}")
     c.check_range("x of the HgCdTe electron-mobility law", x, *_ROSBECK_X_RANGE, "")
     c.check_range("the HgCdTe electron-mobility law", t, _ROSBECK_T_MIN_K, math.inf, "K")
-    b, cn, cp = _hgcdte_recombination(x, t, gap, ni, me, mh)
+    b, cn, cp = _hgcdte_recombination(x, t, gap, me, mh)
     c.put("radiative_cm3_s", b, f"van Roosbroeck-Shockley relation as in {_ROGALSKI}")
     c.put("auger_electron_cm6_s", cn, f"Auger-1 lifetime of Beattie & Landsberg as in {_ROGALSKI}")
     c.put("auger_hole_cm6_s", cp, f"Auger-7, tau_A7/tau_A1 = 20, as in {_ROGALSKI}")
@@ -524,8 +531,9 @@ def properties(name: str, temperature_K: float, composition_x: float | None = No
     t = float(temperature_K)
     if name in ALLOYS:
         if composition_x is None:
+            what = "Cd in Hg(1-x)Cd(x)Te" if name == "HgCdTe" else "Ga in In(1-x)Ga(x)As"
             raise MaterialError("composition_x", f"{name} is an alloy: give composition_x "
-                                f"({'Cd in Hg(1-x)Cd(x)Te' if name == 'HgCdTe' else 'Ga in In(1-x)Ga(x)As'})")
+                                f"(the fraction x of {what})")
         x = float(composition_x)
         if not 0.0 <= x <= 1.0:
             raise MaterialError("composition_x", f"must be within [0, 1], got {x:g}")
