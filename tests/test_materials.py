@@ -321,6 +321,9 @@ def test_cooled_pixel_sweep_file_and_figure(tmp_path):
     np.testing.assert_allclose(ds["current_psd"].values, lna, rtol=0.1)
     written = plot_all(out, tmp_path)
     assert (tmp_path / "pixel_sweep_readout_noise.png") in written
+    from test_run import _cf_errors  # the IOOS compliance checker's cf:1.11 suite
+
+    assert _cf_errors(out) == []
 
 
 def test_channel_parts_add_up_to_the_current_spectrum():
