@@ -36,7 +36,7 @@ each law.
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 __all__ = [
     "NAMES",
@@ -137,6 +137,8 @@ class MaterialRecord:
     values : dict of str -> Value  Keyed by :data:`PARAMETERS` names (only those known)
     intrinsic_level_eV : float or None  E_i - (E_c + E_v)/2 = (kT/2) ln(N_v/N_c) [eV]
     warnings : tuple of str  Laws used outside their published range, values held constant
+    warning_keys : tuple of tuple of str  The parameters each warning concerns (a warning
+        goes when the scenario overrides all of them)
     """
 
     name: str | None
@@ -145,11 +147,18 @@ class MaterialRecord:
     values: dict = field(default_factory=dict)
     intrinsic_level_eV: float | None = None
     warnings: tuple[str, ...] = ()
+    warning_keys: tuple[tuple[str, ...], ...] = ()
 
     def value(self, key: str) -> float | None:
         """The value of one parameter, None when unknown."""
         entry = self.values.get(key)
         return None if entry is None else entry.value
+
+    def unused(self, keys: tuple[str, ...]) -> MaterialRecord:
+        """The record without the warnings that concern only ``keys`` (values not used)."""
+        kept = [(k, w) for k, w in zip(self.warning_keys, self.warnings) if set(k) - set(keys)]
+        return replace(self, warnings=tuple(w for _, w in kept),
+                       warning_keys=tuple(k for k, _ in kept))
 
     def as_json(self) -> dict:
         """``{key: {"value", "units", "from"}}`` as ``grmc check --json`` prints it."""
@@ -344,6 +353,10 @@ _HGCDTE_X_RANGE = (0.0, 0.6)  # Hansen-Schmit-Casselman gap and Hansen-Schmit n_
 _HGCDTE_T_RANGE_K = (4.2, 300.0)
 _ROSBECK_X_RANGE = (0.2, 0.6)
 _ROSBECK_T_MIN_K = 50.0
+# the values a gap law's range concerns (the intrinsic density and what follows from it)
+_GAP_KEYS = ("band_gap_eV", "intrinsic_density_cm3")
+_HGCDTE_GAP_KEYS = _GAP_KEYS + ("radiative_cm3_s", "auger_electron_cm6_s", "auger_hole_cm6_s",
+                                "electron_thermal_velocity_cm_s", "hole_thermal_velocity_cm_s")
 
 
 class _Collector:
@@ -353,7 +366,7 @@ class _Collector:
         self.name = name
         self.t = temperature_K
         self.values: dict[str, Value] = {}
-        self.warnings: list[str] = []
+        self.warnings: list[tuple[tuple[str, ...], str]] = []
 
     def put(self, key: str, value: float | None, source: str) -> None:
         if value is not None:
@@ -365,16 +378,19 @@ class _Collector:
             return
         self.put(key, value, f"{source}: 300 K value held constant")
         if abs(self.t - 300.0) > HELD_CONSTANT_SPAN:
-            self.warnings.append(
+            self.warnings.append(((key,),
                 f"{key}: the {self.name} value is that of 300 K held constant (no temperature "
                 f"law in the library); {self.t:g} K is far from 300 K, give the key if you "
-                "know a better value")
+                "know a better value"))
 
-    def check_range(self, what: str, value: float, lo: float, hi: float, unit: str) -> None:
+    def check_range(self, keys: tuple[str, ...], what: str, value: float, lo: float,
+                    hi: float, unit: str) -> None:
+        """Warn (about the parameters ``keys``) when ``value`` is outside [lo, hi]."""
         if not lo <= value <= hi:
             u = f" {unit}" if unit else ""
             span = f"above {lo:g}{u}" if math.isinf(hi) else f"for {lo:g} to {hi:g}{u}"
-            self.warnings.append(f"{what} is fitted {span}; {value:g}{u} is outside that range")
+            self.warnings.append(
+                (keys, f"{what} is fitted {span}; {value:g}{u} is outside that range"))
 
 
 def _binary(name: str, t: float) -> tuple[_Collector, float, float]:
@@ -386,12 +402,13 @@ def _binary(name: str, t: float) -> tuple[_Collector, float, float]:
         raise MaterialError("temperature_K", f"the {name} gap law gives {gap:.3g} eV at {t:g} K")
     c.put("band_gap_eV", gap, f"Varshni law, Physica 34, 149 (1967); coefficients of "
           f"{row.varshni_source}")
-    c.check_range(f"the {name} band-gap law", t, *_GAP_RANGE_K, "K")
+    c.check_range(_GAP_KEYS, f"the {name} band-gap law", t, *_GAP_RANGE_K, "K")
     scale = (t / 300.0) ** 1.5
     nc, nv = row.dos_300[0] * scale, row.dos_300[1] * scale
     if name == "Si":
         c.put("intrinsic_density_cm3", silicon_intrinsic_density(t), _MT)
-        c.check_range("the Si intrinsic-density fit", t, *_SI_NI_RANGE_K, "K")
+        c.check_range(("intrinsic_density_cm3",), "the Si intrinsic-density fit", t,
+                      *_SI_NI_RANGE_K, "K")
     else:
         ni = math.sqrt(nc * nv) * math.exp(-gap / (2.0 * BOLTZMANN_EV_K * t))
         c.put("intrinsic_density_cm3", ni, f"sqrt(N_c N_v) exp(-E_g/2kT) with N_c, N_v of "
@@ -408,7 +425,7 @@ def _binary(name: str, t: float) -> tuple[_Collector, float, float]:
         for key, mu, k in zip(keys, row.mobility_300, row.mobility_exponents):
             c.put(key, mu * (t / 300.0) ** -k,
                   f"lattice mobility (T/300)^-{k:g}, {row.mobility_source}")
-        c.check_range(f"the {name} lattice-mobility law", t, *_MOBILITY_RANGE_K, "K")
+        c.check_range(keys, f"the {name} lattice-mobility law", t, *_MOBILITY_RANGE_K, "K")
     c.held("radiative_cm3_s", row.radiative, row.radiative_source)
     c.held("auger_electron_cm6_s", row.auger[0], row.auger_source)
     c.held("auger_hole_cm6_s", row.auger[1], row.auger_source)
@@ -421,7 +438,7 @@ def _ingaas(x: float, t: float) -> tuple[_Collector, float, float]:
     gap = ingaas_gap(x, t)
     c.put("band_gap_eV", gap, f"x E_g(GaAs) + (1-x) E_g(InAs) - x(1-x) {INGAAS_BOWING_EV} eV, "
           f"bowing of {_VMR}")
-    c.check_range("the InGaAs band-gap law", t, *_GAP_RANGE_K, "K")
+    c.check_range(_GAP_KEYS, "the InGaAs band-gap law", t, *_GAP_RANGE_K, "K")
     ga, in_ = _BINARIES["GaAs"], _BINARIES["InAs"]
     # density-of-states masses from N(300 K) = 2.509e19 (m*/m0)^(3/2), interpolated linearly
     m300 = _dos_cm3(1.0, 300.0)
@@ -484,8 +501,9 @@ def _hgcdte(x: float, t: float) -> tuple[_Collector, float, float]:
             "composition_x", f"Hg(1-x)Cd(x)Te with x = {x:g} at {t:g} K has no gap "
             f"(E_g = {gap:.3g} eV, a semimetal): the library's laws do not apply")
     c.put("band_gap_eV", gap, _HSC)
-    c.check_range("x of the HgCdTe laws", x, *_HGCDTE_X_RANGE, "")
-    c.check_range("the HgCdTe gap and intrinsic-density laws", t, *_HGCDTE_T_RANGE_K, "K")
+    c.check_range(_HGCDTE_GAP_KEYS, "x of the HgCdTe laws", x, *_HGCDTE_X_RANGE, "")
+    c.check_range(_HGCDTE_GAP_KEYS, "the HgCdTe gap and intrinsic-density laws", t,
+                  *_HGCDTE_T_RANGE_K, "K")
     ni = hgcdte_intrinsic_density(x, t)
     c.put("intrinsic_density_cm3", ni, _HS)
     me, mh = _hgcdte_masses(gap)
@@ -496,8 +514,11 @@ def _hgcdte(x: float, t: float) -> tuple[_Collector, float, float]:
     mu_e = 9e8 * s / t ** (2 * r)
     c.put("electron_mobility_cm2_Vs", mu_e, f"9e8 s/T^(2r), {_ROSBECK}")
     c.put("hole_mobility_cm2_Vs", 0.01 * mu_e, f"1 % of the electron mobility, {_ROGALSKI}")
-    c.check_range("x of the HgCdTe electron-mobility law", x, *_ROSBECK_X_RANGE, "")
-    c.check_range("the HgCdTe electron-mobility law", t, _ROSBECK_T_MIN_K, math.inf, "K")
+    mobilities = ("electron_mobility_cm2_Vs", "hole_mobility_cm2_Vs")
+    c.check_range(mobilities, "x of the HgCdTe electron-mobility law", x, *_ROSBECK_X_RANGE,
+                  "")
+    c.check_range(mobilities, "the HgCdTe electron-mobility law", t, _ROSBECK_T_MIN_K,
+                  math.inf, "K")
     b, cn, cp = _hgcdte_recombination(x, t, gap, me, mh)
     c.put("radiative_cm3_s", b, f"van Roosbroeck-Shockley relation as in {_ROGALSKI}")
     c.put("auger_electron_cm6_s", cn, f"Auger-1 lifetime of Beattie & Landsberg as in {_ROGALSKI}")
@@ -548,7 +569,9 @@ def properties(name: str, temperature_K: float, composition_x: float | None = No
         c, nc, nv = _binary(name, t)
     level = 0.5 * BOLTZMANN_EV_K * t * math.log(nv / nc)
     return MaterialRecord(name=name, composition_x=x, temperature_K=t, values=c.values,
-                          intrinsic_level_eV=level, warnings=tuple(c.warnings))
+                          intrinsic_level_eV=level,
+                          warnings=tuple(text for _, text in c.warnings),
+                          warning_keys=tuple(keys for keys, _ in c.warnings))
 
 
 def resolve(temperature_K: float, *, name: str | None = None,
@@ -587,13 +610,14 @@ def resolve(temperature_K: float, *, name: str | None = None,
         if key not in values:
             values[key] = Value(float(value), PARAMETERS[key],
                                 "default" if name is None else "not in the library: default")
-    warnings = list(record.warnings)
-    for key, value in (overrides or {}).items():
-        if value is not None:
-            values[key] = Value(float(value), PARAMETERS[key], "scenario")
-            warnings = [w for w in warnings if not w.startswith(f"{key}:")]
+    given = {k for k, v in (overrides or {}).items() if v is not None}
+    for key in given:
+        values[key] = Value(float(overrides[key]), PARAMETERS[key], "scenario")
+    # a warning stays while one of the values it concerns still comes from the library
+    kept = [(k, w) for k, w in zip(record.warning_keys, record.warnings) if set(k) - given]
     ordered = {k: values[k] for k in PARAMETERS if k in values}
     return MaterialRecord(name=record.name, composition_x=record.composition_x,
                           temperature_K=record.temperature_K, values=ordered,
                           intrinsic_level_eV=record.intrinsic_level_eV,
-                          warnings=tuple(warnings))
+                          warnings=tuple(w for _, w in kept),
+                          warning_keys=tuple(k for k, _ in kept))

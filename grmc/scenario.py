@@ -566,6 +566,8 @@ def _parse_material(src: str, table: Any, readout: dict | None) -> Material:
                                     defaults={k: 0.0 for k in band})
     except MaterialError as exc:
         raise ScenarioError(src, "material", exc.key, exc.message) from None
+    if readout is None:  # no readout uses the mobilities: no warnings about them
+        record = record.unused(_MOBILITIES)
     return Material(
         temperature_K=vals["temperature_K"],
         intrinsic_density_cm3=record.value("intrinsic_density_cm3"),

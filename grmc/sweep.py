@@ -312,8 +312,11 @@ def run_sweep(scenario: Scenario, varies: list[Vary], out: str | Path, *,
             client = Client(scheduler)
         else:
             n = workers or default_workers()
+            # no dashboard; the scheduler's small HTTP server listens on a free local port
+            # (its default, 8787, may be taken by another cluster on the machine)
             cluster = LocalCluster(n_workers=min(n, len(todo)), threads_per_worker=1,
-                                   dashboard_address=None, processes=True)
+                                   dashboard_address=None, processes=True,
+                                   scheduler_kwargs={"dashboard_address": "127.0.0.1:0"})
             client = Client(cluster)
         try:
             futures = [client.submit(_evaluate_task, scenario, points[i], i, noise_f,
