@@ -242,6 +242,8 @@ REFUSED = [
                          "energy_below_conduction_eV = 0.54\nenergy_eV = 0.1"),
      "[traps.au] energy"),
     ("no name, no n_i", ('name = "Si"', ""), "[material] intrinsic_density_cm3"),
+    ("no library mobility", ('name = "Si"', 'name = "InGaAs"\ncomposition_x = 0.47'),
+     "[readout] electron_mobility_cm2_Vs"),
 ]
 
 
