@@ -47,6 +47,16 @@ def _nonneg_int(text: str) -> int:
     return value
 
 
+def _positive_float(text: str) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a number, got {text!r}") from None
+    if not value > 0 or value == float("inf"):
+        raise argparse.ArgumentTypeError(f"must be a finite number > 0, got {text}")
+    return value
+
+
 def _command_line(argv: list[str] | None) -> str:
     args = sys.argv[1:] if argv is None else argv
     return " ".join(["grmc", *(shlex.quote(a) for a in args)])
@@ -172,7 +182,8 @@ def cmd_sweep(args) -> int:
     out = Path(args.output) if args.output else _default_output(args.scenario, "_sweep")
     try:
         run_sweep(scenario, varies, out, scheduler=args.scheduler, resume=args.resume,
-                  workers=args.workers, command=args.command_line)
+                  workers=args.workers, command=args.command_line,
+                  noise_frequencies=tuple(args.frequency) if args.frequency else None)
     except KeyboardInterrupt:
         print(f"grmc: interrupted; finished points are kept in {out}.parts, "
               "run the same command with --resume to continue", file=sys.stderr)
@@ -248,6 +259,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--scheduler", help="address of a running Dask scheduler")
     p.add_argument("--resume", action="store_true", help="continue an interrupted sweep")
     p.add_argument("--workers", type=_positive_int, help="local Dask workers (default: cores)")
+    p.add_argument("--frequency", type=_positive_float, action="append", metavar="HZ",
+                   help="with a [readout]: record the current noise at this frequency "
+                   "(repeatable; default 1000 Hz)")
     p.add_argument("-o", "--output", help="output file (default outputs/<stem>_sweep.nc)")
     p.set_defaults(func=cmd_sweep)
 

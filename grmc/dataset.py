@@ -185,6 +185,11 @@ VARIABLES: dict[str, Var] = {
     "telegraph_fraction_stderr": Var(("noise_frequency",), "1",
                                      "binomial standard error of telegraph_fraction"),
     "probability_outside": Var((), "1", "probability mass outside the truncated state space"),
+    "intrinsic_density": Var((), "cm-3", "intrinsic carrier density used"),
+    "band_gap": Var((), "eV", "band gap of the material at the temperature"),
+    "current_psd_photon": Var(("frequency",), "A2 Hz-1",
+                              "part of the linear-noise current spectrum driven by the shot "
+                              "noise of the optical generation"),
 }
 
 
