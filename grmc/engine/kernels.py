@@ -10,11 +10,13 @@ integrals of x and x^2, event counts per channel, optionally the flows, and the 
 its options as another, :class:`~grmc.engine.tables.KernelOptions`, whose "none" values
 switch the modulation and the flows off (both built in :mod:`grmc.engine.tables`).
 
-The event loop (:func:`_phase`) is a sequence of small steps, each a function inlined into
-it at compile time: :func:`_total` (a0), :func:`_draw_channel` (the search),
-:func:`_accept` (thinning), :func:`_apply_event` / :func:`_apply_recorded` (the change),
-:func:`_update_propensities` and :func:`_close_bins` (recording).  The plain-Python twin in
-:mod:`grmc.engine.oracle` has a function of the same name for each step.
+The event loop (:func:`_phase`) is a sequence of small compiled steps: :func:`_total` (a0),
+:func:`_draw_channel` (the search), :func:`_accept` (thinning), :func:`_apply_event` /
+:func:`_apply_recorded` (the change), :func:`_update_propensities` and :func:`_close_bins`
+(recording).  The steps called once per event are inlined by LLVM and :func:`_total`, called
+at two places, by numba (``inline="always"``), so the loop runs as one function, as fast as
+when it was written out in one piece (``benchmarks/bench_engine.py``).  The plain-Python
+twin in :mod:`grmc.engine.oracle` has a function of the same name for each step.
 
 Algorithm (the oracle in ``grmc.engine.oracle`` repeats every step in the same order)
 -------------------------------------------------------------------------------------
@@ -99,7 +101,13 @@ modulation no extra draw is made and every trajectory is the one of the plain en
 Layout for speed: every channel's changes, slot updates and dependents sit in one record of
 fixed length (padded with no-op entries), so the inner loops have fixed trip counts and the
 branch predictor is not misled by which channel fired; integer tables are uint64, which
-spares numba's negative-index handling.
+spares numba's negative-index handling.  Two hand optimisations stay because the benchmark
+shows they pay (best of 5 alternating runs on the benchmark network, thread CPU time): a
+dependent channel and its three slots packed into one 64-bit word (unpacked into four words:
+18-23 instead of 24-24.5 M events/s) and the branch-free comparison of the first four
+places of the search (a plain loop: 22.8 instead of 24.8-25.0 M events/s).  The four running
+sums of a0 are not an optimisation one may drop: they fix the order of the additions, and
+so a0 and every draw after it.
 
 References
 ----------
