@@ -235,6 +235,24 @@ def test_compiled_entry_equals_wrapper(small):
         _same(kernels.TrajectoryResult(*out[:6], n, st.copy(), out.flows), r)
 
 
+def test_options_record_has_none_values_and_one_compiled_loop(small):
+    """The options record: without options its "none" values (no channel has index
+    NO_CHANNEL, no flow weights); with and without options the records have the same numba
+    types, so the one compiled entry has exactly one specialization (a second one would
+    mean a second compilation of the whole loop)."""
+    from grmc.engine import tables
+
+    m, arr, x0 = small
+    none = kernels.make_options(None, None)
+    assert none.mod_channel == tables.NO_CHANNEL and none.mod_channel >= m.n_channels
+    assert none.flow_weight.shape == (0,)
+    kw = {"x0": x0, "duration_s": 1e-7, "n_samples": 4}
+    kernels.simulate(*arr, rng_state=rng.stream_state(1, 0), **kw)
+    kernels.simulate(*arr, rng_state=rng.stream_state(1, 0), flow_weight=m.stoich[:, 0],
+                     modulation=(2, kernels.SQUARE, 1.0e6, 0.5, 0.0), **kw)
+    assert len(kernels.run.signatures) == 1
+
+
 def test_kernel_equals_oracle_through_rounding_guard_region():
     """Same identity on a model whose propensities span 20 orders of magnitude (dark thermal
     generation next to trap channels), where the running sum and a0 round differently."""

@@ -269,12 +269,19 @@ class KernelOptions(NamedTuple):
 NO_CHANNEL = np.uint64(2**64 - 1)
 
 
+#: Both options off (the empty flow weights stay writable, so the record has the same
+#: numba type with and without options and the loop is compiled once).
+_NO_OPTIONS = KernelOptions(NO_CHANNEL, np.int64(0), 0.0, 0.0, 0.0, np.zeros(0, np.float64))
+
+
 def make_options(modulation: Modulation | None, flow_weight: np.ndarray | None
                  ) -> KernelOptions:
     """The :class:`KernelOptions` of checked options (:func:`validate_options`).
 
     The fields have the same types whatever is switched on, so the loop is compiled once.
     """
+    if modulation is None and flow_weight is None:
+        return _NO_OPTIONS
     fw = (np.zeros(0, dtype=np.float64) if flow_weight is None
           else np.array(flow_weight, dtype=np.float64, order="C"))
     if modulation is None:
