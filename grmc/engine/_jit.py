@@ -28,8 +28,9 @@ and, when it is 3 or 4, points ``NUMBA_CACHE_DIR`` there (numba itself skips an 
 record the outcome.
 
 numba checks a cached function against its own source file only: the kernels in
-``kernels.py`` embed the generator of ``rng.py``, so after editing ``rng.py`` delete the
-cache (``grmc/engine/__pycache__/*.nbi``, ``*.nbc``, or the directory above) by hand.
+``kernels.py`` embed the generator of ``rng.py`` and read the records of ``tables.py``, so
+after editing ``rng.py`` or the records' fields in ``tables.py`` delete the cache
+(``grmc/engine/__pycache__/*.nbi``, ``*.nbc``, or the directory above) by hand.
 """
 
 from __future__ import annotations
@@ -153,7 +154,7 @@ jit = numba.njit(nogil=True, cache=CACHE_ENABLED, fastmath=False, error_model="n
 #: step is never called from Python, its code is compiled into its caller's).  A step called
 #: once in a loop is inlined by LLVM; measured in ``benchmarks/bench_engine.py``, this runs
 #: the event loop at the speed of the loop written out in one function, while numba's own
-#: IR-level inlining (:data:`inline_step`) of the larger steps cost about 40 %.
+#: IR-level inlining (:data:`inline_step`) of the larger steps cost about a third.
 step = numba.njit(nogil=True, fastmath=False, error_model="numpy")
 
 #: A step inlined at numba's IR level (``inline="always"``): for a small step called at more
