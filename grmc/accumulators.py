@@ -182,7 +182,7 @@ class _Spectrum:
         """Mean periodograms of the jackknife groups, or None with fewer than 8 groups."""
         if len(self.groups) < 8 or not plan.jackknife:
             return None
-        size = plan.run.trajectories // plan.jackknife
+        size = self.n // plan.jackknife
         return np.array([self.groups[g] / size for g in sorted(self.groups)])
 
 

@@ -13,6 +13,7 @@ import numpy as np
 
 from . import population, spectra
 from .accumulators import Accumulators
+from .bands import band_average
 from .model import ELEMENTARY_CHARGE_C
 from .plan import Plan
 
@@ -158,6 +159,30 @@ def pixel_population(plan: Plan, acc: Accumulators, data: dict) -> tuple[dict, d
     return out, coords
 
 
+def band_spectra(plan: Plan, acc: Accumulators, data: dict) -> tuple[dict, dict]:
+    """Spectra averaged over 10 bands per decade with their chi-squared intervals, and the
+    linear-noise spectra averaged over the same Fourier frequencies."""
+    freqs = plan.frequencies
+    spec = acc.count_spectrum
+    b = band_average(freqs, spec.mean(), spec.segments(plan))
+    out = {"psd_band": (("species", "frequency_band"), b.mean),
+           "psd_band_low": (("species", "frequency_band"), b.low),
+           "psd_band_high": (("species", "frequency_band"), b.high),
+           "psd_band_lna": (("species", "frequency_band"),
+                            band_average(freqs, data["psd_lna"][1]).mean),
+           "band_frequencies": (("frequency_band",), b.counts)}
+    cur = acc.current_spectrum
+    if cur is not None:
+        c = band_average(freqs, cur.mean(), cur.segments(plan))
+        out.update({"current_psd_band": (("frequency_band",), c.mean),
+                    "current_psd_band_low": (("frequency_band",), c.low),
+                    "current_psd_band_high": (("frequency_band",), c.high),
+                    "current_psd_band_lna": (("frequency_band",),
+                                             band_average(freqs,
+                                                          data["current_psd_lna"][1]).mean)})
+    return out, {"frequency_band": ("frequency_band", b.centres)}
+
+
 #: The derived quantities, in order (add new ones at the end).
 DERIVED = (
     count_fits,
@@ -165,6 +190,7 @@ DERIVED = (
     drive_response,
     devices,
     pixel_population,
+    band_spectra,
 )
 
 

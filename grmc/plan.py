@@ -21,7 +21,7 @@ from . import continuum, population, spectra
 from .model import Counts, Model, build_model, draw_counts, nominal_counts
 from .scenario import Scenario, ScenarioError
 
-__all__ = ["OVERSAMPLE", "N_BATCHES", "JACKKNIFE_GROUPS", "Plan", "Prepared", "SlicePlan",
+__all__ = ["OVERSAMPLE", "N_BATCHES", "CHUNK_TRAJECTORIES", "Plan", "Prepared", "SlicePlan",
            "make_plan", "prepare", "start_state"]
 
 #: Fine bins per output sample interval recorded by the engine for the spectra (see
@@ -29,8 +29,9 @@ __all__ = ["OVERSAMPLE", "N_BATCHES", "JACKKNIFE_GROUPS", "Plan", "Prepared", "S
 OVERSAMPLE = 8
 #: Batches used for the standard error when the ensemble has a single trajectory.
 N_BATCHES = 16
-#: Jackknife groups of trajectories (trajectory i belongs to group i mod G).
-JACKKNIFE_GROUPS = 16
+#: Trajectories per chunk: chunk k holds trajectories 4k .. 4k + 3, whatever the ensemble
+#: size, so that rounds (multiples of 16 trajectories) cut the same chunks as one pass.
+CHUNK_TRAJECTORIES = 4
 #: Stream purposes spawned from (seed, trajectory): 0 the event engine, 1 dopant draws.
 PURPOSE_ENGINE, PURPOSE_DOPANTS = 0, 1
 
@@ -184,16 +185,21 @@ class Plan:
                                                segments=self.segments, oversample=OVERSAMPLE)
 
     def group(self, i: int) -> int | None:
-        """Jackknife group of trajectory ``i`` (None without groups)."""
-        if not self.jackknife:
-            return None
-        return i // (self.scenario.run.trajectories // self.jackknife)
+        """Jackknife group of trajectory ``i``: i mod G (None without groups)."""
+        return i % self.jackknife if self.jackknife else None
 
     def pixel_counts(self, i: int) -> Counts:
         """Dopant and trap counts of trajectory ``i`` (its own stream, purpose 1)."""
         rng = np.random.default_rng(np.random.SeedSequence(self.seed,
                                                            spawn_key=(i, PURPOSE_DOPANTS)))
         return draw_counts(self.scenario, rng)
+
+    def check_pixels(self, start: int, stop: int) -> None:
+        """Refuse drawn pixels ``start .. stop - 1`` that the reservoir's pair exchange does
+        not allow (before they are simulated)."""
+        if self.poisson and self.scenario.reservoir is not None:
+            check_pixels(self.scenario, (self.pixel_counts(i) for i in range(start, stop)),
+                         first=start)
 
     def device(self, i: int) -> Prepared:
         """The prepared model of trajectory ``i``."""
@@ -203,18 +209,32 @@ class Plan:
 def jackknife_groups(trajectories: int) -> int:
     """Number of equal groups of trajectories for jackknife fit errors: the largest divisor
     of ``trajectories`` from 8 to 16 (16 groups gave well-calibrated corner errors on
-    telegraph signals), or 0 when there is none."""
+    telegraph signals), or 0 when there is none.
+
+    Trajectory i belongs to group i mod G.  A run in rounds starts with a multiple of 16
+    trajectories and doubles, so G = 16 throughout and the groups of the rounds merge
+    exactly into those of a run of the final count."""
     for g in range(16, 7, -1):
         if trajectories % g == 0:
             return g
     return 0
 
 
-def check_pixels(scenario: Scenario, draws) -> None:
+def trajectory_chunks(start: int, stop: int) -> list[range]:
+    """Chunks of trajectories ``start .. stop - 1``, aligned on multiples of
+    :data:`CHUNK_TRAJECTORIES` (they depend on the indices only, never on the workers or the
+    ensemble size).  Merged in order, their sums are those of one pass over any larger range
+    whose bounds are multiples of the chunk size."""
+    c = CHUNK_TRAJECTORIES
+    edges = [start, *range((start // c + 1) * c, stop, c), stop]
+    return [range(a, b) for a, b in zip(edges[:-1], edges[1:]) if b > a]
+
+
+def check_pixels(scenario: Scenario, draws, *, first: int = 0) -> None:
     """Refuse, before any simulation, a population in which some pixel's drawn counts do not
     allow the reservoir's pair exchange (:func:`grmc.model.build_model`)."""
     seen: set[Counts] = set()
-    for i, counts in enumerate(draws):
+    for i, counts in enumerate(draws, start=first):
         if counts in seen:
             continue
         seen.add(counts)
@@ -273,6 +293,5 @@ def make_plan(scenario: Scenario, *, slice_events: float) -> Plan:
         flow_weight=np.asarray(every.flow_weight), base=base,
         slices=slice_plan(base, rs, slice_events), bands=bands,
         jackknife=jackknife_groups(rs.trajectories), models=models)
-    if plan.poisson and scenario.reservoir is not None:
-        check_pixels(scenario, (plan.pixel_counts(i) for i in range(rs.trajectories)))
+    plan.check_pixels(0, rs.trajectories)
     return plan

@@ -3,37 +3,42 @@
 * the plan (:mod:`grmc.plan`) is made once from the scenario: models, start states, time
   slices, seeds;
 * the ensemble runs chunks of trajectories on threads, each chunk reduced into its own
-  accumulators (:func:`grmc.chunk.reduce_chunk`), merged in chunk order
-  (:mod:`grmc.accumulators`), so the data do not depend on the number of workers;
+  accumulators (:func:`grmc.chunk.reduce_chunk`) and merged in chunk order into the run's
+  (:mod:`grmc.accumulators`, :func:`grmc.rounds.run_ensemble`), so the data do not depend
+  on the number of workers; with an accuracy target the ensemble runs in rounds until it is
+  reached (:mod:`grmc.rounds`, :mod:`grmc.window`);
 * the theory (:func:`grmc.theory.theory`) puts the continuum and linear-noise answers beside
   the Monte Carlo ones;
 * the Dataset gathers the accumulators' variables, the theory's and the derived ones
-  (:mod:`grmc.derived`: fits, shot level, responses, populations).
+  (:mod:`grmc.derived`: fits, shot level, responses, populations, band-averaged spectra).
 """
 
 from __future__ import annotations
 
 import dataclasses
+import sys
 import time
 from typing import TYPE_CHECKING
 
 import numpy as np
 
 from .accumulators import Accumulators
-from .chunk import reduce_chunk
 from .dataset import finish
 from .derived import derive
-from .engine.ensemble import chunk_bounds, map_chunks
-from .plan import OVERSAMPLE, Plan, Prepared, SlicePlan, make_plan, prepare, slice_plan, start_state
+from .engine.ensemble import default_workers
+from .plan import (OVERSAMPLE, Plan, Prepared, SlicePlan, make_plan, prepare, slice_plan,
+                   start_state)
 from .readout import describe_current
+from .rounds import _Bar, run_ensemble, run_rounds
 from .scenario import Scenario
 from .theory import theory
+from .window import choose_window, given_run_keys
 
 if TYPE_CHECKING:  # pragma: no cover
     import xarray as xr
 
-__all__ = ["run", "run_ensemble", "assemble", "OVERSAMPLE", "Prepared", "prepare",
-           "start_state", "scenario_with"]
+__all__ = ["run", "assemble", "OVERSAMPLE", "Prepared", "prepare", "start_state",
+           "scenario_with"]
 
 #: Events per engine call when a trajectory is cut into time slices (about a second).
 SLICE_EVENTS = 2.0e7
@@ -52,22 +57,6 @@ def scenario_with(scenario: Scenario, **run_changes) -> Scenario:
     return dataclasses.replace(scenario, run=dataclasses.replace(scenario.run, **changes))
 
 
-def run_ensemble(plan: Plan, indices: range, *, workers: int | None = None,
-                 progress: bool | None = None) -> Accumulators:
-    """Trajectories ``indices`` of ``plan`` over threads, merged in chunk order."""
-    def work(chunk, cancel, tick):
-        return reduce_chunk(plan, chunk, cancel=cancel, tick=tick)
-
-    chunks = [range(indices.start + c.start, indices.start + c.stop)
-              for c in chunk_bounds(len(indices))]
-    parts = map_chunks(work, chunks, workers=workers, progress=progress,
-                       units_per_item=plan.slices.units)
-    acc = Accumulators.for_plan(plan)
-    for part in parts:
-        acc.merge(part)
-    return acc
-
-
 def run(
     scenario: Scenario,
     *,
@@ -76,34 +65,92 @@ def run(
     workers: int | None = None,
     progress: bool | None = None,
     command: str | None = None,
+    accuracy: float | None = None,
+    band_Hz: tuple[float, float] | None = None,
+    max_seconds: float | None = None,
 ) -> xr.Dataset:
     """Run the ensemble of a scenario and return the output Dataset.
 
     Parameters
     ----------
     scenario : Scenario
-    trajectories : int, optional  Override ``[run] trajectories``
+    trajectories : int, optional  Override ``[run] trajectories`` (with an accuracy: the
+        first round's size, rounded up to a multiple of 16; default 32)
     seed : int, optional  Override ``[run] seed``
     workers : int, optional  Threads (default: all cores); the data do not depend on it
-    progress : bool, optional  Progress bar: True, False, or None (only on a terminal)
+    progress : bool, optional  Progress bar and the lines saying what was chosen: True,
+        False, or None (the bar only on a terminal)
     command : str, optional  Command line recorded in ``history``
+    accuracy : float, optional  Override ``[run] accuracy``: run in rounds until every
+        checked relative 95 % half-width is at most this (0 < accuracy < 1) [1]
+    band_Hz : (float, float), optional  Override ``[run] band_Hz``, the band the spectra
+        must reach the accuracy in [Hz]
+    max_seconds : float, optional  Override ``[run] max_seconds``, the time budget of a run
+        in rounds [s]
 
     Returns
     -------
-    xarray.Dataset  The variables of the output contract (see :mod:`grmc.dataset`).
+    xarray.Dataset  The variables of the output contract (see :mod:`grmc.dataset`); with an
+    accuracy also the attributes ``accuracy_target``, ``accuracy_reached``,
+    ``accuracy_band_Hz``, ``rounds`` and ``accuracy_stop``.
 
     Raises
     ------
+    ScenarioError
+        A target band that cannot be resolved (names ``[run] band_Hz``), before simulating.
     KeyboardInterrupt
         When interrupted; nothing is returned or written.
     """
-    scenario = scenario_with(scenario, trajectories=None if trajectories is None
-                             else int(trajectories), seed=None if seed is None else int(seed))
+    first = None if trajectories is None else int(trajectories)
+    scenario = scenario_with(scenario, trajectories=first,
+                             seed=None if seed is None else int(seed),
+                             accuracy=accuracy, band_Hz=None if band_Hz is None
+                             else tuple(map(float, band_Hz)), max_seconds=max_seconds)
+    rs = scenario.run
+    if rs.accuracy is not None:
+        return _run_to_accuracy(scenario, first=first, workers=workers, progress=progress,
+                                command=command)
     plan = make_plan(scenario, slice_events=SLICE_EVENTS)
     t0 = time.perf_counter()
-    acc = run_ensemble(plan, range(scenario.run.trajectories), workers=workers,
-                       progress=progress)
+    bar = _Bar(progress, rs.trajectories * plan.slices.units,
+               f"trajectories ({plan.slices.units} time slices each)")
+    try:
+        acc = run_ensemble(plan, range(rs.trajectories), Accumulators.for_plan(plan),
+                           workers=workers, bar=bar)
+    finally:
+        bar.close()
     return assemble(plan, acc, wall_time_s=time.perf_counter() - t0, command=command)
+
+
+def _run_to_accuracy(scenario: Scenario, *, first: int | None, workers: int | None,
+                     progress: bool | None, command: str | None) -> xr.Dataset:
+    """A run in rounds (:mod:`grmc.rounds`) with the window chosen where it was left out
+    (:mod:`grmc.window`)."""
+    rs = scenario.run
+    if first is None and "trajectories" in given_run_keys(scenario):
+        first = rs.trajectories
+    choice = choose_window(scenario, accuracy=rs.accuracy, band_Hz=rs.band_Hz,
+                           max_seconds=rs.max_seconds, first=first,
+                           workers=workers or default_workers())
+    if progress is not False:
+        for line in choice.notes:
+            print(f"grmc: chose {line}", file=sys.stderr)
+    plan = make_plan(choice.scenario, slice_events=SLICE_EVENTS)
+    out = run_rounds(plan, first=choice.first, accuracy=rs.accuracy, band_Hz=choice.band_Hz,
+                     max_seconds=rs.max_seconds, workers=workers, progress=progress)
+    reached = out.reached
+    if out.stopped_by == "budget":
+        print(f"grmc: warning: time budget max_seconds = {rs.max_seconds:g} s reached after "
+              f"{out.rounds} rounds ({out.acc.n} trajectories): worst relative half-width "
+              f"+-{100 * reached.worst:.3g} % ({reached.where}) against the target "
+              f"+-{100 * rs.accuracy:g} %; the file holds what was reached", file=sys.stderr)
+    return assemble(plan, out.acc, wall_time_s=out.wall_time_s, command=command,
+                    accuracy_target=float(rs.accuracy),
+                    accuracy_reached=float(reached.worst),
+                    accuracy_worst=reached.where,
+                    accuracy_band_Hz=np.array(choice.band_Hz, dtype=float),
+                    accuracy_stop=out.stopped_by, rounds=int(out.rounds),
+                    accuracy_choices="; ".join(choice.notes))
 
 
 def assemble(plan: Plan, acc: Accumulators, *, wall_time_s: float, command: str | None = None,
