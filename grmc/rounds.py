@@ -101,8 +101,8 @@ class Outcome:
 
 
 def _label(rounds: int, total: int, size: int, worst: float | None, target: float) -> str:
-    now = "-" if worst is None else f"{100 * worst:.1f} %"
-    return (f"round {rounds + 1}: {total}+{size} trajectories, worst +-{now} "
+    now = "not yet known" if worst is None else f"+-{100 * worst:.1f} %"
+    return (f"round {rounds + 1}: {total}+{size} trajectories, worst {now} "
             f"(target +-{100 * target:g} %)")
 
 

@@ -18,6 +18,7 @@ import pytest
 import xarray as xr
 from birth_death import birth_death_box
 from scipy import stats
+from test_run import _cf_errors
 
 import grmc
 from grmc import exact
@@ -172,6 +173,7 @@ def test_a_target_the_budget_cannot_meet_stops_with_a_warning(tmp_path, capsys):
     assert ds.attrs["accuracy_stop"] == "budget"
     assert float(ds.attrs["accuracy_reached"]) > 0.001
     assert "psd_band" in ds
+    assert _cf_errors(out) == []  # the file still passes the CF-1.11 checks (IOOS checker)
 
 
 @pytest.mark.parametrize("args, named", [
