@@ -234,3 +234,26 @@ def test_band_average_interval_is_welch_with_the_band_degrees_of_freedom():
     assert np.all(np.diff(np.log10(b.centres)) >= 0.1 - 1e-9)
     assert np.all((b.edges[:, 0] <= b.centres) & (b.centres < b.edges[:, 1]))
     assert b.counts.sum() <= f.size
+
+
+def test_a_chunk_reduced_from_a_pickled_plan_gives_the_same_accumulators():
+    """The ensemble step is a pure function of (plan, trajectory indices): a plan sent to
+    another process (pickled) reduces a chunk to the same numbers, and the chunk results
+    merged in order equal one pass (exact reproducibility, common practice)."""
+    import pickle
+
+    from grmc.accumulators import Accumulators
+    from grmc.chunk import reduce_chunk
+    from grmc.plan import make_plan
+
+    scen = grmc.load_scenario(text=_bd_text("trajectories = 8\nduration_s = 2.0e-3\n"
+                                            "samples = 256\nseed = 5"))
+    plan = make_plan(scen, slice_events=2.0e7)
+    here = reduce_chunk(plan, range(4, 8))
+    there = reduce_chunk(pickle.loads(pickle.dumps(plan)), range(4, 8))
+    np.testing.assert_array_equal(here.count_spectrum.psd, there.count_spectrum.psd)
+    np.testing.assert_array_equal(here.moments.sum_x2, there.moments.sum_x2)
+    merged = Accumulators.for_plan(plan).merge(reduce_chunk(plan, range(0, 4))).merge(here)
+    whole = grmc.run(scen, workers=1, progress=False)
+    np.testing.assert_array_equal(merged.count_spectrum.mean(), whole["psd"].values)
+    np.testing.assert_array_equal(merged.events.events, whole["events"].values)
