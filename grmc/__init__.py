@@ -24,7 +24,8 @@ def run(scenario: Scenario, **options):
     """Run the ensemble of a scenario and return the output ``xarray.Dataset``.
 
     The same as ``grmc run`` without writing a file; options as in
-    :func:`grmc.simulate.run` (``trajectories``, ``seed``, ``workers``, ``progress``).
+    :func:`grmc.simulate.run` (``trajectories``, ``seed``, ``workers``, ``progress``,
+    ``accuracy``, ``band_Hz``, ``max_seconds``).
     """
     from .simulate import run as _run
 

@@ -93,13 +93,48 @@ def cmd_run(args) -> int:
 
     scenario = load_scenario(args.scenario)
     out = Path(args.output) if args.output else _default_output(args.scenario)
+    target = _accuracy_options(args)
     ds = run(scenario, trajectories=args.trajectories, seed=args.seed, workers=args.workers,
-             progress=None if not args.quiet else False, command=args.command_line)
+             progress=None if not args.quiet else False, command=args.command_line, **target)
     save(ds, out)
     if not args.quiet:
         print(format_run_table(ds))
     print(f"wrote {out}")
     return EXIT_OK
+
+
+def _accuracy_options(args) -> dict:
+    """``--accuracy``, ``--band F1:F2`` and ``--max-seconds`` checked (exit 2 names them)."""
+    where = args.scenario
+
+    def number(option: str, text: str) -> float:
+        try:
+            value = float(text)
+        except ValueError:
+            raise UsageError(f"{where}: {option}: expected a number, got {text!r}") from None
+        if value != value or value in (float("inf"), float("-inf")):
+            raise UsageError(f"{where}: {option}: must be finite, got {text!r}")
+        return value
+
+    out = {}
+    if args.accuracy is not None:
+        out["accuracy"] = number("--accuracy", args.accuracy)
+        if not 0.0 < out["accuracy"] < 1.0:
+            raise UsageError(f"{where}: --accuracy: must be between 0 and 1 (a relative "
+                             f"half-width, e.g. 0.05), got {args.accuracy}")
+    if args.band is not None:
+        parts = args.band.split(":")
+        if len(parts) != 2:
+            raise UsageError(f"{where}: --band: expected F1:F2 in Hz, got {args.band!r}")
+        f1, f2 = (number("--band", p) for p in parts)
+        if f1 <= 0 or f1 >= f2:
+            raise UsageError(f"{where}: --band: needs 0 < F1 < F2, got {args.band}")
+        out["band_Hz"] = (f1, f2)
+    if args.max_seconds is not None:
+        out["max_seconds"] = number("--max-seconds", args.max_seconds)
+        if out["max_seconds"] <= 0:
+            raise UsageError(f"{where}: --max-seconds: must be > 0, got {args.max_seconds}")
+    return out
 
 
 def cmd_plot(args) -> int:
@@ -217,6 +252,15 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--trajectories", type=_positive_int, help="override [run] trajectories")
     p.add_argument("--seed", type=_nonneg_int, help="override [run] seed")
     p.add_argument("--workers", type=_positive_int, help="threads (default: all cores)")
+    p.add_argument("--accuracy", metavar="REL",
+                   help="run in rounds until every checked 95 %% half-width is at most REL "
+                        "(relative, 0 < REL < 1); overrides [run] accuracy")
+    p.add_argument("--band", metavar="F1:F2",
+                   help="band [Hz] the spectra must reach the accuracy in; overrides "
+                        "[run] band_Hz (default: from the linear-noise corners)")
+    p.add_argument("--max-seconds", metavar="S",
+                   help="time budget of a run in rounds; overrides [run] max_seconds "
+                        "(default 600)")
     p.add_argument("-q", "--quiet", action="store_true", help="no table, no progress bar")
     p.set_defaults(func=cmd_run)
 

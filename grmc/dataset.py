@@ -52,6 +52,8 @@ COORDINATES: dict[str, Var] = {
     "sweep": Var(("sweep",), "1", "sweep point index"),
     "noise_frequency": Var(("noise_frequency",), "Hz", "frequency of the per-pixel noise"),
     "pixel_frequency": Var(("pixel_frequency",), "Hz", "band centre of the pixel spectra"),
+    "frequency_band": Var(("frequency_band",), "Hz",
+                          "geometric centre of the frequency band (10 bands per decade)"),
 }
 
 _ENS = "realization: mean"
@@ -190,6 +192,31 @@ VARIABLES: dict[str, Var] = {
     "current_psd_photon": Var(("frequency",), "A2 Hz-1",
                               "part of the linear-noise current spectrum driven by the shot "
                               "noise of the optical generation"),
+    # band-averaged spectra (10 bands per decade), see grmc.bands
+    "psd_band": Var(("species", "frequency_band"), "Hz-1",
+                    "PSD of the count averaged over the band's Fourier frequencies", _ENS),
+    "psd_band_low": Var(("species", "frequency_band"), "Hz-1",
+                        "lower end of the 95 % interval of psd_band (chi-squared with the "
+                        "band's 2 K m degrees of freedom: K segments, m Fourier frequencies)"),
+    "psd_band_high": Var(("species", "frequency_band"), "Hz-1",
+                         "upper end of the 95 % interval of psd_band (chi-squared with the "
+                         "band's 2 K m degrees of freedom: K segments, m Fourier frequencies)"),
+    "psd_band_lna": Var(("species", "frequency_band"), "Hz-1",
+                        "linear-noise PSD averaged over the band's Fourier frequencies"),
+    "current_psd_band": Var(("frequency_band",), "A2 Hz-1",
+                            "PSD of the readout current averaged over the band's Fourier "
+                            "frequencies", _ENS),
+    "current_psd_band_low": Var(("frequency_band",), "A2 Hz-1",
+                                "lower end of the 95 % interval of current_psd_band "
+                                "(chi-squared with the band's 2 K m degrees of freedom)"),
+    "current_psd_band_high": Var(("frequency_band",), "A2 Hz-1",
+                                 "upper end of the 95 % interval of current_psd_band "
+                                 "(chi-squared with the band's 2 K m degrees of freedom)"),
+    "current_psd_band_lna": Var(("frequency_band",), "A2 Hz-1",
+                                "linear-noise PSD of the readout current averaged over the "
+                                "band's Fourier frequencies"),
+    "band_frequencies": Var(("frequency_band",), "1",
+                            "Fourier frequencies averaged in the band (m)"),
 }
 
 

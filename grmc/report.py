@@ -169,4 +169,10 @@ def format_run_table(ds) -> str:
         ev = int(ds.attrs["events_total"])
         wall = float(ds.attrs["wall_time_s"])
         lines.append(f"  {ev:.3g} events in {wall:.2f} s ({ev / wall / 1e6:.1f} M events/s)")
+    if "accuracy_target" in ds.attrs:
+        f1, f2 = (float(f) for f in ds.attrs["accuracy_band_Hz"])
+        lines.append(f"  accuracy: +-{100 * float(ds.attrs['accuracy_reached']):.3g} % reached "
+                     f"(target +-{100 * float(ds.attrs['accuracy_target']):g} %, "
+                     f"{f1:.3g}-{f2:.3g} Hz) after {int(ds.attrs['rounds'])} rounds; worst: "
+                     f"{ds.attrs.get('accuracy_worst', '?')}")
     return "\n".join(lines)

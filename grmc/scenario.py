@@ -210,6 +210,9 @@ class RunSettings:
     settle_s : float  Simulated and discarded before t = 0 [s]
     seed : int  Seed of every random stream
     dopants : "rounded" or "poisson"  How dopant and trap counts are set per trajectory
+    accuracy : float, optional  Target relative 95 % half-width; the run goes in rounds
+    band_Hz : (float, float), optional  Band the accuracy is asked over [Hz]
+    max_seconds : float  Time budget of a run in rounds [s]
     """
 
     trajectories: int = 256
@@ -218,6 +221,9 @@ class RunSettings:
     settle_s: float = 0.0
     seed: int = 1
     dopants: Literal["rounded", "poisson"] = "rounded"
+    accuracy: float | None = None
+    band_Hz: tuple[float, float] | None = None
+    max_seconds: float = 600.0
 
 
 @dataclass(frozen=True)
@@ -405,6 +411,9 @@ _RUN = {
     "settle_s": _F(default=0.0, lo=0.0),
     "seed": _I(default=1, lo=0),
     "dopants": _S(default="rounded", choices=("rounded", "poisson")),
+    "accuracy": _F(lo=0.0, lo_open=True),
+    "band_Hz": _Key("band"),
+    "max_seconds": _F(default=600.0, lo=0.0, lo_open=True),
 }
 _POPULATION = {
     "frequencies_Hz": _Key("floatlist", required=True, lo=0.0, lo_open=True),
@@ -484,13 +493,7 @@ def _check_value(src: str, section: str, key: str, value: Any, spec: _Key) -> An
             out.append(float(v))
         return tuple(sorted(out))
     elif spec.kind == "band":
-        if (not isinstance(value, list) or len(value) != 2
-                or any(isinstance(v, bool) or not isinstance(v, (int, float)) for v in value)):
-            fail(f"expected a list of two frequencies [f1, f2], got {value!r}")
-        f1, f2 = (float(v) for v in value)
-        if not (math.isfinite(f1) and math.isfinite(f2) and 0 < f1 < f2):
-            fail(f"must be two finite frequencies with 0 < f1 < f2, got {value!r}")
-        return (f1, f2)
+        return check_band(value, fail)
     elif spec.kind == "list3":
         if not isinstance(value, list) or len(value) != 3:
             fail(f"expected a list of three edge lengths, got {value!r}")
@@ -506,7 +509,24 @@ def _check_value(src: str, section: str, key: str, value: Any, spec: _Key) -> An
         bad = value <= spec.lo if spec.lo_open else value < spec.lo
         if bad:
             fail(f"must be {_fmt_bound(spec)}, got {value!r}")
+    if key == "accuracy" and value >= 1.0:
+        fail(f"must be < 1 (a relative half-width, e.g. 0.05), got {value!r}")
     return value
+
+
+def check_band(value: Any, fail) -> tuple[float, float]:
+    """A frequency band [f1, f2] with 0 < f1 < f2 [Hz]; ``fail(message)`` raises."""
+    if not isinstance(value, (list, tuple)) or len(value) != 2:
+        fail(f"expected [f1, f2] in Hz, got {value!r}")
+    for v in value:
+        if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v):
+            fail(f"expected numbers, got {v!r}")
+    f1, f2 = float(value[0]), float(value[1])
+    if f1 <= 0:
+        fail(f"f1 must be > 0, got {f1!r}")
+    if f1 >= f2:
+        fail(f"f1 must be below f2, got [{f1!r}, {f2!r}]")
+    return f1, f2
 
 
 def _read_table(src: str, section: str, table: Any, schema: dict[str, _Key]) -> dict[str, Any]:

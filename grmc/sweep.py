@@ -131,17 +131,20 @@ def _point_seed(seed: int, index: int) -> int:
     return int(ss.generate_state(1, np.uint32)[0])
 
 
-def _lna_tau(model) -> tuple[np.ndarray, np.ndarray, float]:
+def _lna_tau(model) -> tuple[np.ndarray, np.ndarray, np.ndarray, float]:
+    """Continuum steady state, linear-noise variance and spectral time constant S(0)/(4 var)
+    (at f0, four decades below the slowest corner) from :func:`grmc.theory.theory`."""
     from . import continuum
+    from .theory import theory
 
-    lna = continuum.lna(model)
-    var = np.diag(lna.covariance).copy()
-    times = np.asarray(lna.relaxation_times, dtype=float)
+    th = theory(model)
+    var = th.variables["var_lna"][1]
+    times = th.variables["relaxation_time_lna"][1]
     f0 = 1e-4 / (2 * math.pi * times.max()) if times.size else 1.0
     s0 = np.real(np.einsum("iif->if", continuum.lna_psd(model, np.array([f0]))))[:, 0]
     with np.errstate(divide="ignore", invalid="ignore"):
         tau = np.where(var > 0, s0 / (4 * var), np.nan)
-    return var, tau, f0
+    return th.steady, var, tau, f0
 
 
 def evaluate_point(scenario: Scenario, index: int, *, exact_limit: int = EXACT_STATE_LIMIT,
@@ -156,12 +159,11 @@ def evaluate_point(scenario: Scenario, index: int, *, exact_limit: int = EXACT_S
     without a library material); with a ``[readout]`` the lists ``current_psd``,
     ``current_psd_lna`` and ``current_psd_photon`` at ``noise_frequencies`` [A^2/Hz].
     """
-    from . import continuum, exact
+    from . import exact
     from .model import build_model
 
     model = build_model(scenario)
-    ss = continuum.steady_state(model)
-    var_lna, tau_lna, f0 = _lna_tau(model)
+    ss, var_lna, tau_lna, f0 = _lna_tau(model)
     noise_f = np.asarray(noise_frequencies, dtype=float)
     out: dict[str, Any] = {"index": index, "species": list(model.species)}
     current = None
