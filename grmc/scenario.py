@@ -319,6 +319,19 @@ class Scenario:
 # --------------------------------------------------------------------------------------------
 
 
+#: Largest count the event engine holds exactly: it keeps the state in float64 (integers are
+#: exact below 2^53; the margin of one bit leaves room for the excess pairs and the changes).
+COUNT_MAX = 2**52
+#: Largest density accepted [cm^-3]: no solid holds more than about 1e23 atoms per cm^3
+#: (common practice), so anything above this is a typing slip, not a material.
+DENSITY_MAX = 1.0e24
+#: Smallest volume accepted [cm^3]: (0.1 nm)^3, less than one atom.
+VOLUME_MIN = 1.0e-24
+#: Largest n_i exp(|E_t - E_i| / kT) accepted [cm^-3]: beyond it the emission rates and their
+#: products overflow double precision long before any count could follow them.
+EMISSION_DENSITY_MAX = 1.0e150
+
+
 @dataclass(frozen=True)
 class _Key:
     kind: str  # "float", "int", "str", "list3"
@@ -340,61 +353,61 @@ _SECTIONS_ALLOWED = ("material", "volume", "traps", "light", "start", "run", "re
                      "population", "reservoir")
 
 _MATERIAL = {
-    "temperature_K": _F(required=True, lo=0.0, lo_open=True),
-    "intrinsic_density_cm3": _F(required=True, lo=0.0, lo_open=True),
-    "radiative_cm3_s": _F(default=0.0, lo=0.0),
-    "auger_electron_cm6_s": _F(default=0.0, lo=0.0),
-    "auger_hole_cm6_s": _F(default=0.0, lo=0.0),
-    "donors_cm3": _F(default=0.0, lo=0.0),
-    "acceptors_cm3": _F(default=0.0, lo=0.0),
+    "temperature_K": _F(required=True, lo=1e-3, hi=1e4),
+    "intrinsic_density_cm3": _F(required=True, lo=0.0, lo_open=True, hi=DENSITY_MAX),
+    "radiative_cm3_s": _F(default=0.0, lo=0.0, hi=1e-3),
+    "auger_electron_cm6_s": _F(default=0.0, lo=0.0, hi=1e-15),
+    "auger_hole_cm6_s": _F(default=0.0, lo=0.0, hi=1e-15),
+    "donors_cm3": _F(default=0.0, lo=0.0, hi=DENSITY_MAX),
+    "acceptors_cm3": _F(default=0.0, lo=0.0, hi=DENSITY_MAX),
 }
 _VOLUME = {
-    "size_nm": _Key("list3", lo=0.0, lo_open=True),
-    "volume_cm3": _F(lo=0.0, lo_open=True),
-    "surface_area_cm2": _F(lo=0.0, lo_open=True),
+    "size_nm": _Key("list3", lo=0.0, lo_open=True, hi=1e7),
+    "volume_cm3": _F(lo=VOLUME_MIN, hi=1.0),
+    "surface_area_cm2": _F(lo=0.0, lo_open=True, hi=1e2),
 }
 _TRAP = {
     "label": _S(required=True, pattern=r"^[A-Za-z0-9_-]+$"),
-    "count": _I(lo=0),
-    "density_cm3": _F(lo=0.0),
-    "areal_density_cm2": _F(lo=0.0),
-    "energy_eV": _F(default=0.0),
+    "count": _I(lo=0, hi=COUNT_MAX),
+    "density_cm3": _F(lo=0.0, hi=DENSITY_MAX),
+    "areal_density_cm2": _F(lo=0.0, hi=1e17),
+    "energy_eV": _F(default=0.0, lo=-10.0, hi=10.0),
     "kind": _S(default="acceptor", choices=("acceptor", "donor")),
-    "electron_capture_cm3_s": _F(lo=0.0),
-    "hole_capture_cm3_s": _F(lo=0.0),
-    "electron_cross_section_cm2": _F(lo=0.0),
-    "hole_cross_section_cm2": _F(lo=0.0),
-    "thermal_velocity_cm_s": _F(lo=0.0, lo_open=True),
+    "electron_capture_cm3_s": _F(lo=0.0, hi=1e-3),
+    "hole_capture_cm3_s": _F(lo=0.0, hi=1e-3),
+    "electron_cross_section_cm2": _F(lo=0.0, hi=1e-8),
+    "hole_cross_section_cm2": _F(lo=0.0, hi=1e-8),
+    "thermal_velocity_cm_s": _F(lo=0.0, lo_open=True, hi=3e10),
 }
 _LIGHT = {
-    "generation_cm3_s": _F(default=0.0, lo=0.0),
+    "generation_cm3_s": _F(default=0.0, lo=0.0, hi=1e40),
     "waveform": _S(default="steady", choices=("steady", "off", "sine", "square")),
-    "modulation_frequency_Hz": _F(default=0.0, lo=0.0),
+    "modulation_frequency_Hz": _F(default=0.0, lo=0.0, hi=1e15),
     "modulation_depth": _F(default=0.0, lo=0.0),
 }
-_START = {"excess_pairs": _I(default=0, lo=0)}
+_START = {"excess_pairs": _I(default=0, lo=0, hi=COUNT_MAX)}
 _RUN = {
-    "trajectories": _I(default=256, lo=1),
+    "trajectories": _I(default=256, lo=1, hi=2**31 - 1),
     "duration_s": _F(default=1.0e-6, lo=0.0, lo_open=True),
-    "samples": _I(default=4096, lo=16),
+    "samples": _I(default=4096, lo=16, hi=2**31 - 1),
     "settle_s": _F(default=0.0, lo=0.0),
-    "seed": _I(default=1, lo=0),
+    "seed": _I(default=1, lo=0, hi=2**63 - 1),
     "dopants": _S(default="rounded", choices=("rounded", "poisson")),
 }
 _POPULATION = {
-    "frequencies_Hz": _Key("floatlist", required=True, lo=0.0, lo_open=True),
-    "threshold": _F(lo=0.0, lo_open=True),
+    "frequencies_Hz": _Key("floatlist", required=True, lo=0.0, lo_open=True, hi=1e15),
+    "threshold": _F(lo=0.0, lo_open=True, hi=1e300),
 }
 _READOUT = {
-    "bias_V": _F(required=True),
-    "length_cm": _F(required=True, lo=0.0, lo_open=True),
-    "electron_mobility_cm2_Vs": _F(required=True, lo=0.0),
-    "hole_mobility_cm2_Vs": _F(required=True, lo=0.0),
+    "bias_V": _F(required=True, lo=-1e4, hi=1e4),
+    "length_cm": _F(required=True, lo=1e-8, hi=1e2),
+    "electron_mobility_cm2_Vs": _F(required=True, lo=0.0, hi=1e8),
+    "hole_mobility_cm2_Vs": _F(required=True, lo=0.0, hi=1e8),
     "collection": _S(default="mean", choices=("mean", "events")),
 }
 _RESERVOIR = {
     "carrier": _S(required=True, choices=("electrons", "holes")),
-    "density_cm3": _F(required=True, lo=0.0),
+    "density_cm3": _F(required=True, lo=0.0, hi=DENSITY_MAX),
     "exchange_time_s": _F(lo=0.0, lo_open=True),
 }
 
@@ -423,6 +436,16 @@ def _fmt_bound(spec: _Key) -> str:
     if spec.lo is None:
         return ""
     return f"> {spec.lo:g}" if spec.lo_open else f">= {spec.lo:g}"
+
+
+def _check_range(value: float, spec: _Key, fail) -> None:
+    """Lower and upper bound of a number (upper bounds keep every derived quantity finite)."""
+    if spec.lo is not None:
+        bad = value <= spec.lo if spec.lo_open else value < spec.lo
+        if bad:
+            fail(f"must be {_fmt_bound(spec)}, got {value!r}")
+    if spec.hi is not None and value > spec.hi:
+        fail(f"must be <= {spec.hi:g}, got {value:g} (beyond the range grmc computes in)")
 
 
 def _check_value(src: str, section: str, key: str, value: Any, spec: _Key) -> Any:
@@ -455,6 +478,7 @@ def _check_value(src: str, section: str, key: str, value: Any, spec: _Key) -> An
                 fail(f"expected numbers, got {v!r}")
             if v <= 0:
                 fail(f"every value must be > 0, got {v!r}")
+            _check_range(float(v), spec, fail)
             out.append(float(v))
         return tuple(sorted(out))
     elif spec.kind == "list3":
@@ -466,12 +490,10 @@ def _check_value(src: str, section: str, key: str, value: Any, spec: _Key) -> An
                 fail(f"expected numbers, got {v!r}")
             if v <= 0:
                 fail(f"every edge must be > 0, got {v!r}")
+            _check_range(float(v), spec, fail)
             out.append(float(v))
         return tuple(out)
-    if spec.lo is not None:
-        bad = value <= spec.lo if spec.lo_open else value < spec.lo
-        if bad:
-            fail(f"must be {_fmt_bound(spec)}, got {value!r}")
+    _check_range(value, spec, fail)
     return value
 
 
@@ -603,6 +625,40 @@ def _check_channels(src: str, material: Material, light: Light, traps: tuple[Tra
                             "counts would grow without bound")
 
 
+def _check_counts(src: str, material: Material, volume: Volume, traps: tuple[Trap, ...],
+                  start: Start) -> None:
+    """Refuse derived counts beyond the engine's exact range (:data:`COUNT_MAX`).
+
+    Each count is density x volume (or areal density x surface area); their sum bounds every
+    species the engine tracks (free carriers, occupied traps).  The offending key is named.
+    """
+    vol = volume.volume_cm3
+    if vol < VOLUME_MIN:
+        raise ScenarioError(src, "volume", "size_nm", f"the box is {vol:.3g} cm^3, smaller "
+                            f"than {VOLUME_MIN:g} cm^3 (less than one atom)")
+    parts = [
+        ("material", "intrinsic_density_cm3", material.intrinsic_density_cm3 * vol),
+        ("material", "donors_cm3", material.donors_cm3 * vol),
+        ("material", "acceptors_cm3", material.acceptors_cm3 * vol),
+        ("start", "excess_pairs", float(start.excess_pairs)),
+    ]
+    for trap in traps:
+        section = f"traps.{trap.label}"
+        if trap.count is not None:
+            parts.append((section, "count", float(trap.count)))
+        elif trap.density_cm3 is not None:
+            parts.append((section, "density_cm3", trap.density_cm3 * vol))
+        else:
+            parts.append((section, "areal_density_cm2",
+                          trap.areal_density_cm2 * (volume.surface_area_cm2 or 0.0)))
+    total = sum(p[2] for p in parts)
+    if total > COUNT_MAX:
+        section, key, biggest = max(parts, key=lambda p: p[2])
+        raise ScenarioError(src, section, key, f"gives {biggest:.3g} particles in the volume "
+                            f"(all counts together {total:.3g}), beyond the {COUNT_MAX:.3g} "
+                            "the event engine counts exactly; use a smaller volume")
+
+
 def parse_scenario(data: dict[str, Any], *, source: str = "<string>", text: str = "") -> Scenario:
     """Validate an already-parsed TOML document.
 
@@ -665,6 +721,7 @@ def parse_scenario(data: dict[str, Any], *, source: str = "<string>", text: str 
             raise ScenarioError(src, "reservoir", "exchange_time_s",
                                 "give the exchange time, or a [readout] whose bias and "
                                 f"{reservoir.carrier[:-1]} mobility set a finite transit time")
+    _check_counts(src, material, volume, traps, start)
     _check_channels(src, material, light, traps,
                     collecting=readout is not None and readout.collection == "events",
                     exchanging=reservoir is not None)

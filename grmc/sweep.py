@@ -35,6 +35,7 @@ from typing import Any
 import numpy as np
 
 from .atomic import write_text_atomic
+from .result import DEVIATION_THRESHOLD, crossing_count
 from .scenario import SCHEMA, Scenario, ScenarioError, parse_scenario, set_key
 
 __all__ = ["Vary", "parse_vary", "sweep_points", "point_scenario", "evaluate_point",
@@ -42,8 +43,6 @@ __all__ = ["Vary", "parse_vary", "sweep_points", "point_scenario", "evaluate_poi
 
 #: Largest exact state space a sweep point uses before it falls back to Monte Carlo.
 EXACT_STATE_LIMIT = 200_000
-#: A relative deviation of this size marks where the continuum answer fails.
-DEVIATION_THRESHOLD = 0.10
 
 
 @dataclass(frozen=True)
@@ -364,21 +363,3 @@ def _key_units(key: str) -> str:
         if name.endswith(suffix):
             return units
     return "1"
-
-
-def crossing_count(mean_count: np.ndarray, deviation: np.ndarray,
-                   threshold: float = DEVIATION_THRESHOLD) -> float | None:
-    """Mean count at which |deviation| falls through ``threshold`` (log-interpolated).
-
-    Returns the largest count where the deviation, coming from large counts, first exceeds the
-    threshold; None when it never crosses within the sweep.
-    """
-    order = np.argsort(mean_count)[::-1]
-    x = np.asarray(mean_count, dtype=float)[order]
-    y = np.abs(np.asarray(deviation, dtype=float)[order])
-    for k in range(1, len(x)):
-        if y[k - 1] < threshold <= y[k] and x[k] > 0 and x[k - 1] > 0:
-            ly0, ly1 = math.log(max(y[k - 1], 1e-300)), math.log(y[k])
-            w = (math.log(threshold) - ly0) / (ly1 - ly0) if ly1 != ly0 else 0.0
-            return float(math.exp(math.log(x[k - 1]) + w * (math.log(x[k]) - math.log(x[k - 1]))))
-    return None
