@@ -102,6 +102,8 @@ def _nonneg_int(text: str) -> int:
         raise argparse.ArgumentTypeError(f"expected a whole number, got {text!r}") from None
     if value < 0:
         raise argparse.ArgumentTypeError(f"must be >= 0, got {value}")
+    if value > 2**63 - 1:
+        raise argparse.ArgumentTypeError(f"must be <= {2**63 - 1}, got {value}")
     return value
 
 
@@ -231,21 +233,38 @@ def cmd_exact(args) -> int:
 
 
 def cmd_sweep(args) -> int:
-    from .sweep import parse_vary, run_sweep
+    from .report import format_sweep_point
+    from .sweep import SchedulerUnreachable, parse_vary, parts_dir, round_integers, run_sweep
 
     scenario = load_scenario(args.scenario)
-    try:
-        varies = [parse_vary(v) for v in args.vary]
-    except ValueError as exc:
-        raise UsageError(f"--vary: {exc}") from None
-    out = Path(args.output) if args.output else _default_output(args.scenario, "_sweep")
+    varies = []
+    for text in args.vary:
+        try:
+            vary, note = round_integers(parse_vary(text))
+        except ValueError as exc:
+            raise UsageError(f"--vary: {exc}") from None
+        if note:
+            print(f"grmc: warning: {note}", file=sys.stderr)
+        varies.append(vary)
+    out = _output_file(args.output, _default_output(args.scenario, "_sweep"))
+    if args.resume and not parts_dir(out).exists():
+        print(f"grmc: note: nothing to resume ({parts_dir(out)} does not exist); "
+              "starting the sweep afresh", file=sys.stderr)
+
+    def report(res: dict) -> None:
+        print(format_sweep_point(res, res.get("assignment", {})), flush=True)
+
     try:
         run_sweep(scenario, varies, out, scheduler=args.scheduler, resume=args.resume,
-                  workers=args.workers, command=args.command_line)
-    except KeyboardInterrupt:
-        print(f"grmc: interrupted; finished points are kept in {out}.parts, "
+                  workers=args.workers, command=args.command_line, on_point=report)
+    except SchedulerUnreachable as exc:
+        print(f"grmc: error: {exc}", file=sys.stderr)
+        return EXIT_FAIL
+    except KeyboardInterrupt as exc:
+        how = "terminated" if isinstance(exc, Terminated) else "interrupted"
+        print(f"grmc: {how}; finished points are kept in {parts_dir(out)}, "
               "run the same command with --resume to continue", file=sys.stderr)
-        return EXIT_INTERRUPTED
+        return EXIT_TERMINATED if isinstance(exc, Terminated) else EXIT_INTERRUPTED
     print(f"wrote {out}")
     return EXIT_OK
 

@@ -58,22 +58,26 @@ def _species_rows(res: Result, first: str) -> list[str]:
     ds = res.ds
     lines = [f"  {'species':<20}{first + ' mean':>12}{'± s.e.':>10}{'continuum':>12}{'':>9}"
              f"{first + ' var':>12}{'± s.e.':>10}{'LNA var':>12}{'':>9}"]
-    nan = np.full(len(res.species), np.nan)
-    zero = np.zeros(len(res.species))
-    fallback = zero if res.exact else nan  # an exact value has no statistical error
+    fallback = np.full(len(res.species), np.nan)  # an exact value has no statistical error
     me_all = res.values("stationary_mean_stderr") if res.has("stationary_mean_stderr") \
         else fallback
     ve_all = res.values("stationary_var_stderr") if res.has("stationary_var_stderr") \
         else fallback
+    mark = _relative if res.exact else _flag
     for i, s in enumerate(res.species):
         m, me = float(ds["stationary_mean"][i]), float(me_all[i])
         c = float(ds["steady_continuum"][i])
         v, ve = float(ds["stationary_var"][i]), float(ve_all[i])
         lv = float(ds["var_lna"][i])
         lines.append(
-            f"  {s:<20}{_g(m, 6):>12}{_g(me, 2):>10}{_g(c, 6):>12}{_flag(m, c, me):>9}"
-            f"{_g(v, 5):>12}{_g(ve, 2):>10}{_g(lv, 5):>12}{_flag(v, lv, ve):>9}")
+            f"  {s:<20}{_g(m, 6):>12}{_g(me, 2):>10}{_g(c, 6):>12}{mark(m, c, me):>9}"
+            f"{_g(v, 5):>12}{_g(ve, 2):>10}{_g(lv, 5):>12}{mark(v, lv, ve):>9}")
     return lines
+
+
+def _relative(value: float, reference: float, stderr: float = 0.0) -> str:
+    """Relative difference of an exact value from the theory's, in per cent."""
+    return _pct(_ratio(value, reference))
 
 
 def _spectral_lines(res: Result) -> list[str]:
@@ -215,8 +219,9 @@ def format_exact_table(ds) -> str:
     lines = [f"{res.title}  (exact solution on {int(attrs.get('n_states', 0))} states, "
              f"probability outside the truncation {outside if outside is not None else 0:.2e})"]
     lines += _species_rows(res, "exact")
-    lines.append(f"  ('!': the exact value differs from the continuum or linear-noise one; in a "
-                 "small volume that is expected)")
+    lines.append("  (columns after the continuum and LNA values: the exact value's relative "
+                 "difference from them; in a small volume the continuum answer is expected to "
+                 "be off)")
     lines += _spectral_lines(res) + _current_lines(res)
     return "\n".join(lines)
 
@@ -245,7 +250,9 @@ def format_sweep_point(result: dict, varied: dict) -> str:
 
 
 def _ratio(value: float, reference: float) -> float:
-    return value / reference - 1.0 if reference else math.nan
+    if not (math.isfinite(value) and math.isfinite(reference)) or reference == 0:
+        return math.nan
+    return value / reference - 1.0
 
 
 def _pct(x: float) -> str:

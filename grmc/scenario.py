@@ -387,9 +387,9 @@ _LIGHT = {
 }
 _START = {"excess_pairs": _I(default=0, lo=0, hi=COUNT_MAX)}
 _RUN = {
-    "trajectories": _I(default=256, lo=1, hi=2**31 - 1),
+    "trajectories": _I(default=256, lo=1, hi=2**53),
     "duration_s": _F(default=1.0e-6, lo=0.0, lo_open=True),
-    "samples": _I(default=4096, lo=16, hi=2**31 - 1),
+    "samples": _I(default=4096, lo=16, hi=2**53),
     "settle_s": _F(default=0.0, lo=0.0),
     "seed": _I(default=1, lo=0, hi=2**63 - 1),
     "dopants": _S(default="rounded", choices=("rounded", "poisson")),
@@ -445,7 +445,9 @@ def _check_range(value: float, spec: _Key, fail) -> None:
         if bad:
             fail(f"must be {_fmt_bound(spec)}, got {value!r}")
     if spec.hi is not None and value > spec.hi:
-        fail(f"must be <= {spec.hi:g}, got {value:g} (beyond the range grmc computes in)")
+        hi, got = (f"{spec.hi:d}", f"{value:d}") if spec.kind == "int" else (
+            f"{spec.hi:g}", f"{value:g}")
+        fail(f"must be <= {hi}, got {got} (beyond the range grmc computes in)")
 
 
 def _check_value(src: str, section: str, key: str, value: Any, spec: _Key) -> Any:
@@ -640,7 +642,7 @@ def _check_counts(src: str, material: Material, volume: Volume, traps: tuple[Tra
         ("material", "intrinsic_density_cm3", material.intrinsic_density_cm3 * vol),
         ("material", "donors_cm3", material.donors_cm3 * vol),
         ("material", "acceptors_cm3", material.acceptors_cm3 * vol),
-        ("start", "excess_pairs", float(start.excess_pairs)),
+        ("start", "excess_pairs", 2.0 * start.excess_pairs),  # an electron and a hole each
     ]
     for trap in traps:
         section = f"traps.{trap.label}"

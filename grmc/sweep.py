@@ -22,12 +22,15 @@ Lorentzian this is its time constant; van Vliet, Proc. IRE 46, 1004, 1958 - from
 
 from __future__ import annotations
 
+import contextlib
 import dataclasses
 import hashlib
 import itertools
 import json
 import math
+import signal
 import tomllib
+from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -38,9 +41,11 @@ from .atomic import write_text_atomic
 from .result import DEVIATION_THRESHOLD, crossing_count
 from .scenario import SCHEMA, Scenario, ScenarioError, parse_scenario, set_key
 
-__all__ = ["Vary", "parse_vary", "sweep_points", "point_scenario", "evaluate_point",
-           "run_sweep", "assemble", "crossing_count", "EXACT_STATE_LIMIT"]
+__all__ = ["Vary", "parse_vary", "round_integers", "parts_dir", "sweep_points", "point_scenario",
+           "evaluate_point", "run_sweep", "SchedulerUnreachable", "assemble", "crossing_count", "EXACT_STATE_LIMIT"]
 
+#: Seconds to wait for a Dask scheduler given by ``--scheduler`` before giving up.
+CONNECT_TIMEOUT_S = 2.0
 #: Largest exact state space a sweep point uses before it falls back to Monte Carlo.
 EXACT_STATE_LIMIT = 200_000
 
@@ -65,6 +70,7 @@ def parse_vary(text: str) -> Vary:
         raise ValueError(f"{text!r}: expected KEY=START:STOP:N[:log]")
     key, spec = text.split("=", 1)
     key = key.strip()
+    _check_key_form(text, key)
     parts = spec.split(":")
     if len(parts) not in (3, 4) or (len(parts) == 4 and parts[3] not in ("log", "lin")):
         raise ValueError(f"{text!r}: expected KEY=START:STOP:N[:log]")
@@ -85,6 +91,48 @@ def parse_vary(text: str) -> Vary:
     return Vary(key=key, values=tuple(float(v) for v in values), log=log)
 
 
+def _check_key_form(text: str, key: str) -> None:
+    """Refuse a key without its section, naming the section that holds it."""
+    parts = key.split(".")
+    if len(parts) == 2 or (len(parts) == 3 and parts[0] == "traps"):
+        return
+    if len(parts) == 1:
+        home = [sec for sec, table in SCHEMA.items() if key in table]
+        hint = (f"; write {home[0]}.{key}" if home and home[0] != "traps"
+                else f"; write traps.<label>.{key}" if home else "")
+        raise ValueError(f"{text!r}: the key {key!r} needs its section, as section.key "
+                         f"or traps.<label>.key{hint}")
+    raise ValueError(f"{text!r}: expected section.key or traps.<label>.key before '='")
+
+
+def _spec_of(key: str):
+    parts = key.split(".")
+    section, name = ("traps", parts[2]) if parts[0] == "traps" and len(parts) == 3 else parts
+    return SCHEMA.get(section, {}).get(name)
+
+
+def round_integers(vary: Vary) -> tuple[Vary, str | None]:
+    """Round the values swept into an integer key (counts, samples, seeds).
+
+    Returns
+    -------
+    (Vary, str or None)  The sweep with the values that will run, and a warning listing the
+        values that were rounded (None when none was).
+    """
+    spec = _spec_of(vary.key)
+    if spec is None or spec.kind != "int":
+        return vary, None
+    rounded = tuple(float(math.floor(v + 0.5)) for v in vary.values)
+    changed = [(v, r) for v, r in zip(vary.values, rounded) if v != r]
+    if not changed:
+        return vary, None
+    shown = ", ".join(f"{v:g} -> {r:g}" for v, r in changed[:4]) + (
+        ", ..." if len(changed) > 4 else "")
+    note = (f"--vary {vary.key}: an integer key; rounded {shown} (the file records the "
+            "values that ran)")
+    return dataclasses.replace(vary, values=rounded), note
+
+
 def sweep_points(varies: list[Vary]) -> list[dict[str, float]]:
     """All combinations, the first ``--vary`` varying slowest."""
     return [dict(zip([v.key for v in varies], combo))
@@ -92,9 +140,7 @@ def sweep_points(varies: list[Vary]) -> list[dict[str, float]]:
 
 
 def _typed(key: str, value: float) -> Any:
-    parts = key.split(".")
-    section, name = ("traps", parts[2]) if parts[0] == "traps" and len(parts) == 3 else parts
-    spec = SCHEMA.get(section, {}).get(name)
+    spec = _spec_of(key)
     if spec is None:
         return value
     if spec.kind == "int":
@@ -198,46 +244,53 @@ def _atomic_json(path: Path, obj) -> None:
     write_text_atomic(path, json.dumps(obj))
 
 
-def _parts_dir(out: Path) -> Path:
+def parts_dir(out: Path) -> Path:
+    """The folder beside a sweep file that keeps its finished points until it is written."""
     return out.with_name(out.name + ".parts")
 
 
-def run_sweep(scenario: Scenario, varies: list[Vary], out: str | Path, *,
-              scheduler: str | None = None, resume: bool = False, workers: int | None = None,
-              command: str | None = None, max_points: int | None = None) -> Path:
-    """Run every sweep point on Dask and write the stacked file.
+class SchedulerUnreachable(ConnectionError):
+    """No Dask scheduler answers at the address given (an environment failure)."""
 
-    Parameters
-    ----------
-    scenario : Scenario  The base scenario
-    varies : list of Vary  The swept keys
-    out : path  The sweep file
-    scheduler : str, optional  Address of a running Dask scheduler; default a LocalCluster
-        (one single-threaded worker per core, no dashboard)
-    resume : bool  Keep the points an earlier, interrupted run of the same sweep finished
-    workers : int, optional  LocalCluster workers (default: all cores)
-    command : str, optional  Command line recorded in ``history``
-    max_points : int, optional  Stop after this many new points (leaves the sweep
-        unfinished, as an interruption would; used to test ``resume``)
 
-    Returns
-    -------
-    Path or None  The sweep file; None while points are missing (``max_points``).
+@contextlib.contextmanager
+def _sigint_ignored():
+    """Start worker processes with Ctrl-C ignored: an interruption reaches the whole process
+    group, and only this process should answer it (the workers are closed from here).  A
+    process started with SIGINT ignored keeps it ignored (POSIX exec semantics)."""
+    try:
+        previous = signal.signal(signal.SIGINT, signal.SIG_IGN)
+    except ValueError:  # not the main thread
+        yield
+        return
+    try:
+        yield
+    finally:
+        signal.signal(signal.SIGINT, previous)
 
-    Raises
-    ------
-    ScenarioError  A swept key or value the scenario format rejects.
-    """
-    from .dataset import save
+
+def _connect(scheduler: str | None, workers: int | None, n_tasks: int):
+    """A Dask client (and the LocalCluster it owns, or None)."""
+    from dask.distributed import Client, LocalCluster
+
     from .engine.ensemble import default_workers
 
-    out = Path(out)
-    points = sweep_points(varies)
-    # validate every point before anything runs (bad keys and values exit 2, nothing written)
-    for assignment in points:
-        point_scenario(scenario, assignment)
-    parts = _parts_dir(out)
-    sig = _signature(scenario, varies)
+    if scheduler:
+        try:
+            return Client(scheduler, timeout=CONNECT_TIMEOUT_S), None
+        except (OSError, ValueError, TypeError) as exc:
+            raise SchedulerUnreachable(
+                f"--scheduler {scheduler}: no Dask scheduler answered within "
+                f"{CONNECT_TIMEOUT_S:g} s ({exc})") from None
+    n = workers or default_workers()
+    with _sigint_ignored():
+        cluster = LocalCluster(n_workers=min(n, n_tasks), threads_per_worker=1,
+                               dashboard_address=None, processes=True)
+    return Client(cluster), cluster
+
+
+def _open_parts(parts: Path, sig: str, n_points: int, resume: bool, out: Path) -> dict:
+    """The points an earlier run of the same sweep finished (creating the folder if new)."""
     manifest = parts / "manifest.json"
     done: dict[int, dict] = {}
     if parts.exists():
@@ -253,22 +306,67 @@ def run_sweep(scenario: Scenario, varies: list[Vary], out: str | Path, *,
             done[int(res["index"])] = res
     else:
         parts.mkdir(parents=True)
-        _atomic_json(manifest, {"signature": sig, "points": len(points)})
+        _atomic_json(manifest, {"signature": sig, "points": n_points})
+    return done
 
+
+def _remove_parts(parts: Path) -> None:
+    for f in parts.iterdir():  # including temporary files an interruption left behind
+        f.unlink()
+    parts.rmdir()
+
+
+def run_sweep(scenario: Scenario, varies: list[Vary], out: str | Path, *,
+              scheduler: str | None = None, resume: bool = False, workers: int | None = None,
+              command: str | None = None, max_points: int | None = None,
+              on_point: Callable[[dict], None] | None = None) -> Path | None:
+    """Run every sweep point on Dask and write the stacked file.
+
+    Parameters
+    ----------
+    scenario : Scenario  The base scenario
+    varies : list of Vary  The swept keys
+    out : path  The sweep file
+    scheduler : str, optional  Address of a running Dask scheduler; default a LocalCluster
+        (one single-threaded worker per core, no dashboard)
+    resume : bool  Keep the points an earlier, interrupted run of the same sweep finished
+    workers : int, optional  LocalCluster workers (default: all cores)
+    command : str, optional  Command line recorded in ``history``
+    max_points : int, optional  Stop after this many new points (leaves the sweep
+        unfinished, as an interruption would; used to test ``resume``)
+    on_point : callable, optional  Called with each point's result as it finishes
+
+    Returns
+    -------
+    Path or None  The sweep file; None while points are missing (``max_points``).
+
+    Raises
+    ------
+    ScenarioError  A swept key or value the scenario format rejects.
+    SchedulerUnreachable  No scheduler at ``scheduler`` (nothing is left behind).
+    """
+    from .dataset import save
+
+    out = Path(out)
+    points = sweep_points(varies)
+    # validate every point before anything runs (bad keys and values exit 2, nothing written)
+    for assignment in points:
+        point_scenario(scenario, assignment)
+    parts = parts_dir(out)
+    fresh = not parts.exists()
+    done = _open_parts(parts, _signature(scenario, varies), len(points), resume, out)
     todo = [i for i in range(len(points)) if i not in done]
     if max_points is not None:
         todo = todo[:max_points]
     if todo:
-        from dask.distributed import Client, LocalCluster, as_completed
+        from dask.distributed import as_completed
 
-        cluster = None
-        if scheduler:
-            client = Client(scheduler)
-        else:
-            n = workers or default_workers()
-            cluster = LocalCluster(n_workers=min(n, len(todo)), threads_per_worker=1,
-                                   dashboard_address=None, processes=True)
-            client = Client(cluster)
+        try:
+            client, cluster = _connect(scheduler, workers, len(todo))
+        except SchedulerUnreachable:
+            if fresh:  # nothing was computed: leave nothing behind
+                _remove_parts(parts)
+            raise
         try:
             futures = [client.submit(_evaluate_task, scenario, points[i], i, pure=False)
                        for i in todo]
@@ -276,6 +374,8 @@ def run_sweep(scenario: Scenario, varies: list[Vary], out: str | Path, *,
                 res = fut.result()
                 _atomic_json(parts / f"point_{res['index']:05d}.json", res)
                 done[int(res["index"])] = res
+                if on_point is not None:
+                    on_point(res)
         finally:
             client.close()
             if cluster is not None:
@@ -284,9 +384,7 @@ def run_sweep(scenario: Scenario, varies: list[Vary], out: str | Path, *,
         return None
     ds = assemble(scenario, varies, [done[i] for i in range(len(points))], command=command)
     save(ds, out)
-    for f in parts.iterdir():  # including temporary files an interruption left behind
-        f.unlink()
-    parts.rmdir()
+    _remove_parts(parts)
     return out
 
 
