@@ -143,14 +143,25 @@ def _default_output(scenario_path: str, suffix: str = "") -> Path:
     return Path("outputs") / f"{Path(scenario_path).stem}{suffix}.nc"
 
 
+def _json_ready(obj):
+    """Replace non-finite floats by None, recursively."""
+    if isinstance(obj, float):
+        return obj if obj == obj and abs(obj) != float("inf") else None
+    if isinstance(obj, dict):
+        return {k: _json_ready(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_json_ready(v) for v in obj]
+    return obj
+
+
 # ------------------------------------------------------------------------------ commands
 def cmd_check(args) -> int:
     from .summary import format_summary, summarize
 
     scenario = load_scenario(args.scenario)
     info = summarize(scenario)
-    if args.json:
-        print(json.dumps(info, indent=2))
+    if args.json:  # JSON has no NaN: an undefined value is null
+        print(json.dumps(_json_ready(info), indent=2, allow_nan=False))
     else:
         print(format_summary(info))
     return EXIT_OK

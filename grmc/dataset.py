@@ -18,13 +18,22 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING
 
-from . import __version__
+from ._version import __version__
 from .atomic import atomic_target
 
 if TYPE_CHECKING:  # pragma: no cover
     import xarray as xr
 
-__all__ = ["Var", "VARIABLES", "COORDINATES", "OutputError", "finish", "validate", "save", "load"]
+__all__ = ["Var", "VARIABLES", "COORDINATES", "OutputError", "FILL_VALUE", "finish", "validate",
+           "save", "load"]
+
+#: Fill value of every floating-point variable: what the file holds where a value is not
+#: defined (a Lorentzian fit that resolved no corner, the histogram row of a species whose
+#: count range was too wide to store, a correlation time of a count that never fluctuates).
+#: It is the netCDF default fill of doubles (NC_FILL_DOUBLE, netCDF User Guide), stored as
+#: the variable's ``_FillValue`` attribute, so netCDF and CF readers (xarray among them)
+#: show these places as missing (NaN) again; the file itself holds no NaN.
+FILL_VALUE = 9.969209968386869e36
 
 
 class OutputError(ValueError):
@@ -223,6 +232,8 @@ def finish(ds: xr.Dataset, *, title: str, scenario_toml: str, command: str | Non
     for name in ds.data_vars:
         if ds[name].dtype.kind in "iu":
             ds[name].encoding["_FillValue"] = None
+        elif ds[name].dtype.kind == "f":
+            ds[name].encoding["_FillValue"] = FILL_VALUE
     now = _dt.datetime.now(_dt.timezone.utc).replace(microsecond=0).isoformat()
     if command is None:
         command = " ".join(["grmc", *sys.argv[1:]]) if sys.argv else "grmc"

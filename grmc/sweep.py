@@ -404,12 +404,11 @@ def assemble(scenario: Scenario, varies: list[Vary], results: list[dict], *,
     for name in ("mean", "mean_err", "var", "var_err", "tau", "tau_err", "continuum",
                  "var_lna", "tau_lna"):
         data[name] = stack(name)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        dev = {
-            "mean": (data["mean"] / data["continuum"] - 1, data["mean_err"] / data["continuum"]),
-            "var": (data["var"] / data["var_lna"] - 1, data["var_err"] / data["var_lna"]),
-            "tau": (data["tau"] / data["tau_lna"] - 1, data["tau_err"] / data["tau_lna"]),
-        }
+    dev = {
+        "mean": _relative(data["mean"], data["mean_err"], data["continuum"]),
+        "var": _relative(data["var"], data["var_err"], data["var_lna"]),
+        "tau": _relative(data["tau"], data["tau_err"], data["tau_lna"]),
+    }
     sw = ("sweep", "species")
     variables = {
         "stationary_mean": (sw, data["mean"]),
@@ -445,6 +444,17 @@ def assemble(scenario: Scenario, varies: list[Vary], results: list[dict], *,
     for name in ("method",):
         ds[name].attrs.update({"long_name": "exact or monte carlo", "units": "1"})
     return ds
+
+
+def _relative(value: np.ndarray, err: np.ndarray, reference: np.ndarray
+              ) -> tuple[np.ndarray, np.ndarray]:
+    """value / reference - 1 and its standard error; 0 where both are exactly 0 (a trap level
+    with no traps: nothing fluctuates and every answer agrees)."""
+    both_zero = (value == 0) & (reference == 0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        dev = np.where(both_zero, 0.0, value / reference - 1)
+        dev_err = np.where(both_zero, err, err / reference)
+    return dev, dev_err
 
 
 def _key_units(key: str) -> str:
