@@ -27,6 +27,7 @@ import dataclasses
 import hashlib
 import itertools
 import json
+import logging
 import math
 import signal
 import tomllib
@@ -283,9 +284,13 @@ def _connect(scheduler: str | None, workers: int | None, n_tasks: int):
                 f"--scheduler {scheduler}: no Dask scheduler answered within "
                 f"{CONNECT_TIMEOUT_S:g} s ({exc})") from None
     n = workers or default_workers()
+    # the cluster's own log lines (a cancelled task, a worker killed on closing) would follow
+    # an interruption's one line: only errors are shown
+    logging.getLogger("distributed").setLevel(logging.ERROR)
     with _sigint_ignored():
         cluster = LocalCluster(n_workers=min(n, n_tasks), threads_per_worker=1,
-                               dashboard_address=None, processes=True)
+                               dashboard_address=None, processes=True,
+                               silence_logs=logging.ERROR)
     return Client(cluster), cluster
 
 
