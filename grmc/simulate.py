@@ -292,8 +292,10 @@ def run(
         "trajectory_mean": (("realization", "species"), tmean),
     }
     groups = _groups(acc.group_psd, group_size)
+    drive = scenario.light.modulation_frequency_Hz if scenario.light.modulated else None
     fits = [spectra.analyse_spectrum(freqs, psd[s], psd_low[s], psd_high[s], k_total,
-                                     batches=None if groups is None else groups[:, s])
+                                     batches=None if groups is None else groups[:, s],
+                                     drive_Hz=drive)
             for s in range(S)]
     data.update(_fit_vars(fits, prefix="", species_dim=True))
     if readout is not None:
@@ -321,7 +323,7 @@ def run(
             band = (freqs[0], above.max()) if above.size else None
         cfit = spectra.analyse_spectrum(freqs, cur_psd - shot, c_low - shot, c_high - shot,
                                         k_total, band=band, batches=None if cgroups is None
-                                        else cgroups - shot)
+                                        else cgroups - shot, drive_Hz=drive)
         data.update(_fit_vars([cfit], prefix="current_", species_dim=False))
 
     if model0.modulation is not None:
