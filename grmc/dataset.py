@@ -187,6 +187,17 @@ VARIABLES: dict[str, Var] = {
     "telegraph_fraction_stderr": Var(("noise_frequency",), "1",
                                      "binomial standard error of telegraph_fraction"),
     "probability_outside": Var((), "1", "probability mass outside the truncated state space"),
+    "pixel_var": Var(("realization", "species"), "1",
+                     "each pixel's own time-weighted variance of the count", "t: variance"),
+    "pixel_var_lna": Var(("realization", "species"), "1",
+                         "linear-noise variance of each pixel's own model"),
+    "pixel_steady_continuum": Var(("realization", "species"), "1",
+                                  "continuum steady-state count of each pixel's own model"),
+    "psd_lna_pixels": Var(("species", "frequency"), "Hz-1",
+                          "average over the pixels of each pixel's own linear-noise spectrum"),
+    "current_psd_lna_pixels": Var(("frequency",), "A2 Hz-1",
+                                  "average over the pixels of each pixel's own linear-noise "
+                                  "current spectrum"),
 }
 
 

@@ -167,7 +167,7 @@ def plot_psd(ds: xr.Dataset | Result, species_or_current: str = "current",
     ax.plot(f, tab.psd, color=_MC_COLOR, lw=0.8 if not tab.exact else 1.6,
             label="exact (master equation)" if tab.exact else f"Monte Carlo{k_txt}")
     if tab.psd_lna is not None:
-        ax.plot(f, tab.psd_lna, color=_LNA_COLOR, lw=1.4, ls="--", label="linear noise")
+        ax.plot(f, tab.psd_lna, color=_LNA_COLOR, lw=1.4, ls="--", label=tab.lna_label)
     both_ways = False
     if tab.is_current and "current_shot_noise" in ds:
         white = float(ds["current_shot_noise"])

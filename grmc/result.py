@@ -114,6 +114,8 @@ class Spectrum:
     corners : tuple of float  Corner frequencies stored in the file [Hz]; None when the file
         stores no fit
     corner_note : str  Why no corner was resolved, where the file says so
+    lna_label : str  What the linear-noise line is (for a pixel population: the average of
+        the pixels' own spectra, like the pooled estimate it is drawn beside)
     """
 
     quantity: str
@@ -129,6 +131,7 @@ class Spectrum:
     method: str
     corners: tuple[float, ...] | None = None
     corner_note: str = ""
+    lna_label: str = "linear noise"
 
     @property
     def exact(self) -> bool:
@@ -332,7 +335,7 @@ def _spectrum(res: Result, quantity: str | None) -> Spectrum:
                              f"give a species instead: {', '.join(res.species)}")
         psd = res.values("current_psd")
         low, high = _current_interval(res, psd)
-        lna, units, is_current = _row(res, "current_psd_lna", None), "A^2/Hz", True
+        lna_name, units, is_current = "current_psd_lna", "A^2/Hz", True
     else:
         if quantity not in res.species or "psd" not in res.ds:
             opts = ", ".join((["current"] if res.has_current else []) + list(res.species))
@@ -342,7 +345,10 @@ def _spectrum(res: Result, quantity: str | None) -> Spectrum:
         high = _row(res, "psd_high", quantity)
         if low is None or high is None:
             low = high = np.full_like(psd, np.nan)
-        lna, units, is_current = _row(res, "psd_lna", quantity), "counts^2/Hz", False
+        lna_name, units, is_current = "psd_lna", "counts^2/Hz", False
+    pixels = res.has(lna_name + "_pixels")
+    lna = _row(res, lna_name + ("_pixels" if pixels else ""), None if is_current else quantity)
+    lna_label = "linear noise, average of the pixels' own" if pixels else "linear noise"
     n_seg = res.n_segments
     if n_seg is None and np.any(np.isfinite(low)):
         try:
@@ -356,6 +362,7 @@ def _spectrum(res: Result, quantity: str | None) -> Spectrum:
         psd_high=high, psd_lna=lna, n_segments=n_seg,
         interval_note=_interval_note(res, low, n_seg),
         method=METHOD_EXACT if res.exact else METHOD_MC, corners=corners, corner_note=why,
+        lna_label=lna_label,
     )
 
 

@@ -342,6 +342,8 @@ def run(
         data["count_histogram"] = (("species", "count_value"), probs)
         coords["count_value"] = ("count_value", values)
     if poisson:
+        data.update(population.own_theory(acc.traj, lambda c: cache.get(c).model, freqs,
+                                          readout=readout))
         cnt = [row[4] for row in acc.traj]
         data["donors"] = (("realization",), np.array([c.donors for c in cnt], dtype=np.int64))
         data["acceptors"] = (("realization",), np.array([c.acceptors for c in cnt],
