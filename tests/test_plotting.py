@@ -158,3 +158,23 @@ def test_import_is_lazy():
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
                          check=True)
     assert out.stdout.split() == ["False", "False"]
+
+
+def test_long_titles_fit_their_panels():
+    """A long scenario title is shortened to one line and the panel's own line wrapped, so
+    that no title line is wider than its panel (measured on the drawn figure's text
+    extents)."""
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+
+    ds = make_dataset()
+    ds.attrs["title"] = "an array of cooled pixels under chopped light with " * 4
+    fig, axes = plotting._grid(4)
+    for ax in axes:
+        plotting.plot_psd(ds, "trapped:deep", ax=ax)
+    canvas = FigureCanvasAgg(fig)
+    canvas.draw()
+    renderer = canvas.get_renderer()
+    for ax in axes:
+        title = ax.title
+        assert "..." in title.get_text()
+        assert title.get_window_extent(renderer).width <= ax.get_window_extent(renderer).width
