@@ -1032,6 +1032,25 @@ def _jackknife_var(
     return (b - 1) / b * np.sum((th - th.mean(axis=0)) ** 2, axis=0)
 
 
+def _batches_kept(batches: np.ndarray | None, keep: np.ndarray) -> np.ndarray | None:
+    """The batch periodograms at the kept frequencies (checked for shape)."""
+    if batches is None:
+        return None
+    bat = np.asarray(batches, dtype=float)
+    if bat.ndim != 2 or bat.shape[1] != keep.size or bat.shape[0] < 2:
+        raise ValueError(f"batches must have shape (B >= 2, {keep.size}), got {bat.shape}")
+    return bat[:, keep]
+
+
+def _analysis(kind: Any, comps: Any, fit: _Fit | None, band: tuple[float, float], k: float,
+              msg: str) -> SpectrumAnalysis:
+    nan = float("nan")
+    return SpectrumAnalysis(kind=kind, components=tuple(comps),
+                            chi2_dof=fit.chi2 / fit.dof if fit is not None else nan,
+                            p_value=fit.p_value if fit is not None else nan, band=band,
+                            n_segments=k, message=msg)
+
+
 def analyse_spectrum(
     freqs: np.ndarray,
     psd: np.ndarray,
@@ -1087,25 +1106,12 @@ def analyse_spectrum(
         t_seg = _fourier_segment_duration(np.asarray(freqs, dtype=float))
     else:
         t_seg = segment_duration
-    bat = None
-    if batches is not None:
-        bat = np.asarray(batches, dtype=float)
-        if bat.ndim != 2 or bat.shape[1] != keep.size or bat.shape[0] < 2:
-            raise ValueError(f"batches must have shape (B >= 2, {keep.size}), got {bat.shape}")
-        bat = bat[:, keep]
+    bat = _batches_kept(batches, keep)
     nan = float("nan")
     band_used = (float(f[0]), float(f[-1])) if f.size else (nan, nan)
 
     def result(kind: Any, comps: Any, fit: _Fit | None, msg: str) -> SpectrumAnalysis:
-        return SpectrumAnalysis(
-            kind=kind,
-            components=tuple(comps),
-            chi2_dof=fit.chi2 / fit.dof if fit is not None else nan,
-            p_value=fit.p_value if fit is not None else nan,
-            band=band_used,
-            n_segments=k,
-            message=msg,
-        )
+        return _analysis(kind, comps, fit, band_used, k, msg)
 
     def with_errors(fit: _Fit) -> tuple[tuple[LorentzianFit, ...], str]:
         if bat is None:
