@@ -22,7 +22,7 @@ import tempfile
 from pathlib import Path
 
 from . import __version__
-from .scenario import ScenarioError, load_scenario
+from .scenario import ScenarioError, check_counts, load_scenario
 
 EXIT_OK, EXIT_FAIL, EXIT_USAGE, EXIT_INTERRUPTED, EXIT_TERMINATED = 0, 1, 2, 130, 143
 DEMO_SCENARIO = "demo_pixel.toml"
@@ -235,6 +235,7 @@ def cmd_exact(args) -> int:
     from .report import format_exact_table
 
     scenario = load_scenario(args.scenario)
+    check_counts(scenario)
     out = _output_file(args.output, _default_output(args.scenario, "_exact"))
     ds = exact_dataset(scenario, command=args.command_line)
     save(ds, out)

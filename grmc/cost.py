@@ -98,7 +98,9 @@ def run_cost(scenario: Scenario, *, trajectories: int | None = None, workers: in
     neutral state (the state a run starts from), as ``grmc check`` reports it."""
     from . import continuum
     from .model import build_model
+    from .scenario import check_counts
 
+    check_counts(scenario)
     model = build_model(scenario)
     x0 = model.nearest_neutral_state(continuum.steady_state(model))
     rate = float(model.propensities(x0).sum())

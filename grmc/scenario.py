@@ -29,6 +29,7 @@ __all__ = [
     "Readout",
     "Reservoir",
     "Scenario",
+    "check_counts",
     "load_scenario",
     "parse_scenario",
     "set_key",
@@ -363,7 +364,7 @@ _MATERIAL = {
 }
 _VOLUME = {
     "size_nm": _Key("list3", lo=0.0, lo_open=True, hi=1e7),
-    "volume_cm3": _F(lo=VOLUME_MIN, hi=1.0),
+    "volume_cm3": _F(lo=VOLUME_MIN, hi=1e6),
     "surface_area_cm2": _F(lo=0.0, lo_open=True, hi=1e2),
 }
 _TRAP = {
@@ -627,13 +628,20 @@ def _check_channels(src: str, material: Material, light: Light, traps: tuple[Tra
                             "counts would grow without bound")
 
 
-def _check_counts(src: str, material: Material, volume: Volume, traps: tuple[Trap, ...],
-                  start: Start) -> None:
+def check_counts(scenario: Scenario) -> None:
     """Refuse derived counts beyond the engine's exact range (:data:`COUNT_MAX`).
 
     Each count is density x volume (or areal density x surface area); their sum bounds every
-    species the engine tracks (free carriers, occupied traps).  The offending key is named.
+    species the engine and the exact solver track (free carriers, occupied traps).  Called
+    by ``check``, ``run``, ``exact``, ``sweep`` and :func:`grmc.simulate.run` (the continuum
+    alone may still be asked about a larger volume from Python).
+
+    Raises
+    ------
+    ScenarioError  Naming the key of the largest contribution.
     """
+    src, material, volume = scenario.source, scenario.material, scenario.volume
+    traps, start = scenario.traps, scenario.start
     vol = volume.volume_cm3
     if vol < VOLUME_MIN:
         raise ScenarioError(src, "volume", "size_nm", f"the box is {vol:.3g} cm^3, smaller "
@@ -723,7 +731,6 @@ def parse_scenario(data: dict[str, Any], *, source: str = "<string>", text: str 
             raise ScenarioError(src, "reservoir", "exchange_time_s",
                                 "give the exchange time, or a [readout] whose bias and "
                                 f"{reservoir.carrier[:-1]} mobility set a finite transit time")
-    _check_counts(src, material, volume, traps, start)
     _check_channels(src, material, light, traps,
                     collecting=readout is not None and readout.collection == "events",
                     exchanging=reservoir is not None)

@@ -30,7 +30,7 @@ from .model import (
     nominal_counts,
 )
 from .readout import current_gradient, describe_current, lna_current
-from .scenario import Scenario, ScenarioError
+from .scenario import Scenario, ScenarioError, check_counts
 
 if TYPE_CHECKING:  # pragma: no cover
     import xarray as xr
@@ -183,6 +183,7 @@ def run(
         changes["seed"] = int(seed)
     if changes:
         scenario = dataclasses.replace(scenario, run=dataclasses.replace(scenario.run, **changes))
+    check_counts(scenario)
     rs = scenario.run
     n_traj, n_samples, duration = rs.trajectories, rs.samples, rs.duration_s
     poisson = rs.dopants == "poisson"

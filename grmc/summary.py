@@ -14,7 +14,7 @@ import numpy as np
 from . import continuum
 from .cost import WARN_EVENTS, cost_warnings, estimate
 from .model import build_model, nominal_counts, trap_means
-from .scenario import Scenario
+from .scenario import Scenario, check_counts
 
 __all__ = ["summarize", "format_summary", "FEW_CARRIERS", "TOO_MANY_EVENTS"]
 
@@ -36,6 +36,7 @@ def summarize(scenario: Scenario) -> dict:
     ``relaxation_times_s``, ``event_rate_per_trajectory_s`` [1/s], ``expected_events``,
     ``warnings`` (list of str).
     """
+    check_counts(scenario)
     model = build_model(scenario)
     counts = nominal_counts(scenario)
     warnings: list[str] = []

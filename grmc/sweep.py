@@ -40,7 +40,8 @@ import numpy as np
 
 from .atomic import write_text_atomic
 from .result import DEVIATION_THRESHOLD, crossing_count
-from .scenario import SCHEMA, Scenario, ScenarioError, parse_scenario, set_key
+from .scenario import (SCHEMA, Scenario, ScenarioError, check_counts, parse_scenario,
+                       set_key)
 
 __all__ = ["Vary", "parse_vary", "round_integers", "parts_dir", "sweep_points", "point_scenario",
            "evaluate_point", "run_sweep", "SchedulerUnreachable", "assemble", "crossing_count", "EXACT_STATE_LIMIT"]
@@ -159,6 +160,7 @@ def point_scenario(scenario: Scenario, assignment: dict[str, float]) -> Scenario
     for key, value in assignment.items():
         set_key(data, key, _typed(key, value), source=scenario.source)
     scen = parse_scenario(data, source=src, text=scenario.text)
+    check_counts(scen)
     return scen
 
 
