@@ -396,3 +396,38 @@ def test_sweep_deviation_of_an_empty_level_is_zero():
 
     dev, err = _relative(np.array([0.0, 2.0]), np.array([0.0, 0.1]), np.array([0.0, 1.0]))
     assert dev.tolist() == [0.0, 1.0] and err.tolist() == [0.0, 0.1]
+
+
+def test_every_exported_name_exists():
+    """Each module's __all__ (the package's first) lists only names that exist, and the
+    figures and the file schema do not reach into the modules downstream of them."""
+    import importlib
+    import pkgutil
+
+    import grmc
+
+    names = ["grmc"] + [f"grmc.{m.name}" for m in pkgutil.iter_modules(grmc.__path__)
+                        if m.name != "__main__"]
+    for name in names:
+        module = importlib.import_module(name)
+        missing = [n for n in getattr(module, "__all__", []) if not hasattr(module, n)]
+        assert missing == [], (name, missing)
+    import ast
+    import inspect
+
+    import grmc.dataset
+    import grmc.plotting
+
+    def relative_imports(module) -> list[str]:
+        """'.x' for ``from .x import ...``; '.' + name for ``from . import name``."""
+        out = []
+        for node in ast.walk(ast.parse(inspect.getsource(module))):
+            if isinstance(node, ast.ImportFrom) and node.level == 1:
+                out += ([f".{node.module}"] if node.module else
+                        [f".{a.name}" for a in node.names])
+        return out
+
+    assert not {".export", ".sweep"} & set(relative_imports(grmc.plotting))
+    # the schema reads the version from its own module, not from the package's __init__
+    assert ".__version__" not in relative_imports(grmc.dataset)
+    assert "._version" in relative_imports(grmc.dataset)
