@@ -44,7 +44,8 @@ from .scenario import (SCHEMA, Scenario, ScenarioError, check_counts, parse_scen
                        set_key)
 
 __all__ = ["Vary", "parse_vary", "round_integers", "parts_dir", "sweep_points", "point_scenario",
-           "evaluate_point", "run_sweep", "SchedulerUnreachable", "assemble", "crossing_count", "EXACT_STATE_LIMIT"]
+           "evaluate_point", "run_sweep", "SchedulerUnreachable", "assemble", "crossing_count",
+           "EXACT_STATE_LIMIT"]
 
 #: Seconds to wait for a Dask scheduler given by ``--scheduler`` before giving up.
 CONNECT_TIMEOUT_S = 2.0

@@ -1,9 +1,9 @@
 """Tests of grmc.plotting: every figure is written as a valid PNG of sensible size.
 
 The synthetic Dataset is built like a real file: the registry's names and units
-(grmc.dataset.finish), the species and channel names of a real model, and Lorentzian spectra (van Vliet, Proc. IRE
-46, 1004, 1958, from memory) with Welch chi-squared intervals (IEEE Trans. Audio
-Electroacoust. 15, 70, 1967), a transient relaxing exponentially toward the steady state
+(grmc.dataset.finish), the species and channel names of a real model, and Lorentzian
+spectra (van Vliet, Proc. IRE 46, 1004, 1958, from memory) with Welch chi-squared intervals
+(IEEE Trans. Audio Electroacoust. 15, 70, 1967), a transient relaxing exponentially toward the steady state
 (low-injection decay, common practice), Poisson/binomial count histograms.
 """
 
