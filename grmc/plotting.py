@@ -47,7 +47,7 @@ if TYPE_CHECKING:  # pragma: no cover
     from matplotlib.axes import Axes
 
 __all__ = ["plot_all", "plot_event_rates", "plot_histogram", "plot_psd", "plot_transient",
-           "plot_validity", "plot_population", "plot_worst_pixels"]
+           "plot_validity", "plot_population", "plot_worst_pixels", "plot_sweep_noise"]
 
 DPI = 150
 _PANEL = (6.4, 4.3)  # inches per panel
@@ -523,6 +523,65 @@ def plot_validity(ds: xr.Dataset | Result, quantity: str = "mean", ax: Axes | No
     return ax
 
 
+def _swept_axis(ds: xr.Dataset) -> tuple[np.ndarray, str]:
+    """Values and label of the first swept key of a sweep file."""
+    key = str(ds.attrs.get("swept_keys", "")).split(" ")[0]
+    if key not in ds.coords:
+        return np.arange(ds.sizes["sweep"], dtype=float), "sweep point"
+    units = ds[key].attrs.get("units", "1")
+    label = "temperature (K)" if key == "material.temperature_K" else (
+        key if units == "1" else f"{key} ({units})")
+    return np.asarray(ds[key].values, dtype=float), label
+
+
+def plot_sweep_noise(ds: xr.Dataset | Result, ax: Axes | None = None) -> Axes:
+    """Readout noise at the recorded frequencies against the swept key (e.g. temperature).
+
+    Per frequency of a sweep file: the exact or Monte Carlo current PSD (markers),
+    ``current_psd_lna`` (line), the photon term ``current_psd_photon`` (dashed) and twice it
+    (dotted), the background-limited G-R level (generation plus recombination of the
+    photocarriers) which the noise meets where the light's carriers dominate.
+
+    Parameters
+    ----------
+    ds : xarray.Dataset  A sweep file with ``current_psd_lna`` (dims sweep, frequency)
+    ax : matplotlib Axes, optional
+
+    Returns
+    -------
+    Axes
+    """
+    ax = _new_axes(ax)
+    res = _as_result(ds)
+    ds = res.ds
+    if "current_psd_lna" not in ds:
+        return _note(ax, "this sweep has no readout noise (the scenario has no [readout])")
+    x, label = _swept_axis(ds)
+    order = np.argsort(x)
+    x = x[order]
+    for k, f in enumerate(np.asarray(ds["frequency"].values, dtype=float)):
+        color = f"C{k}"
+        at = f"{_si(f, 'Hz')}"
+        sim = np.asarray(ds["current_psd"].values[:, k], dtype=float)[order]
+        ax.plot(x, sim, "o", ms=4, color=color, label=f"readout noise at {at} (exact / MC)")
+        lna = np.asarray(ds["current_psd_lna"].values[:, k], dtype=float)[order]
+        ax.plot(x, lna, "-", lw=1.2, color=color, label=f"linear noise at {at}")
+        photon = np.asarray(ds["current_psd_photon"].values[:, k], dtype=float)[order]
+        if np.any(photon > 0):
+            ax.plot(x, np.where(photon > 0, photon, np.nan), "--", lw=1.2, color=color,
+                    alpha=0.8, label="photon (background) shot noise")
+            ax.plot(x, np.where(photon > 0, 2 * photon, np.nan), ":", lw=1.2, color=color,
+                    alpha=0.8, label="background limit, 2 x photon (gen. + rec.)")
+    ax.set_yscale("log")
+    ax.set_xlabel(label)
+    ax.set_ylabel("current noise (A$^2$/Hz)")
+    sub = "readout noise against " + ("temperature" if label.startswith("temp") else label)
+    ax.set_title(_title(res, sub, ax), fontsize=10)
+    ax.grid(True, which="both", alpha=0.3)
+    ax.legend(fontsize=7)
+    return ax
+
+
 # --------------------------------------------------------------------------------------------
 def _grid(n: int, size: tuple[float, float] = _PANEL) -> tuple[Any, list[Axes]]:
     from matplotlib.figure import Figure
@@ -549,6 +608,10 @@ def _plot_sweep(res: Result, out: Path, stem: str) -> list[Path]:
         plot_validity(res, quantity, ax=ax)
     written: list[Path] = []
     _save(fig, out / f"{stem}_validity.png", written)
+    if res.has("current_psd_lna"):  # readout noise against the swept key
+        fig, (ax,) = _grid(1, (7.2, 4.8))
+        plot_sweep_noise(res, ax=ax)
+        _save(fig, out / f"{stem}_readout_noise.png", written)
     return written
 
 
