@@ -68,6 +68,11 @@ class ScenarioError(ValueError):
             where = f"{key}: "
         super().__init__(f"{source}: {where}{message}")
 
+    def __reduce__(self):
+        """Rebuilt from its four parts, so that the error survives pickling (a sweep point
+        refused in a Dask worker reaches the command line intact)."""
+        return (type(self), (self.source, self.section, self.key, self.message))
+
 
 # --------------------------------------------------------------------------------------------
 # Dataclasses handed to the rest of the program

@@ -228,8 +228,10 @@ def evaluate_point(scenario: Scenario, index: int, *, exact_limit: int = EXACT_S
                    var=res.var, var_err=zeros, tau=tau, tau_err=zeros,
                    probability_outside=float(res.mass_outside))
     except exact.StateSpaceTooLarge:
+        from .cost import refuse_absurd, run_cost
         from .simulate import run
 
+        refuse_absurd(scenario, run_cost(scenario))  # a point that could never finish
         seed = _point_seed(scenario.run.seed, index)
         ds = run(scenario, seed=seed, workers=1, progress=False)
         var = ds["stationary_var"].values

@@ -431,3 +431,26 @@ def test_every_exported_name_exists():
     # the schema reads the version from its own module, not from the package's __init__
     assert ".__version__" not in relative_imports(grmc.dataset)
     assert "._version" in relative_imports(grmc.dataset)
+
+
+def test_sweep_point_with_an_absurd_monte_carlo_cost_is_refused():
+    """A point too large for the exact solver falls back to Monte Carlo; when that run could
+    never finish (a 1e300 s window), the point is refused naming the key, not started."""
+    from grmc.scenario import ScenarioError, load_scenario
+    from grmc.sweep import evaluate_point
+
+    scen = load_scenario(text=BASE.replace("duration_s = 1.0e-7", "duration_s = 1e300"))
+    with pytest.raises(ScenarioError, match=r"\[run\] duration_s"):
+        evaluate_point(scen, 0, exact_limit=1)
+
+
+def test_scenario_error_survives_pickling():
+    """Sweep points run in other processes: their refusals come back through pickle."""
+    import pickle
+
+    from grmc.scenario import ScenarioError
+
+    err = ScenarioError("s.toml", "run", "duration_s", "too long")
+    back = pickle.loads(pickle.dumps(err))
+    assert type(back) is ScenarioError and str(back) == str(err)
+    assert (back.section, back.key) == ("run", "duration_s")
