@@ -330,13 +330,14 @@ def _connect(scheduler: str | None, workers: int | None, n_tasks: int):
                 f"--scheduler {scheduler}: no Dask scheduler answered within "
                 f"{CONNECT_TIMEOUT_S:g} s ({exc})") from None
     n = workers or default_workers()
-    # the cluster's own log lines (a cancelled task, a worker killed on closing) would follow
-    # an interruption's one line: only errors are shown
-    logging.getLogger("distributed").setLevel(logging.ERROR)
+    # the cluster's own log lines (a cancelled task, a worker killed on closing, a point's
+    # refusal) would follow the one line grmc prints: every failure of a point comes back
+    # to this process as its exception, so the cluster's logs are kept quiet
+    logging.getLogger("distributed").setLevel(logging.CRITICAL)
     with _sigint_ignored():
         cluster = LocalCluster(n_workers=min(n, n_tasks), threads_per_worker=1,
                                dashboard_address=None, processes=True,
-                               silence_logs=logging.ERROR,
+                               silence_logs=logging.CRITICAL,
                                # the scheduler's small HTTP server on a free local port (its
                                # default, 8787, may be taken by another cluster on the machine)
                                scheduler_kwargs={"dashboard_address": "127.0.0.1:0"})
@@ -429,7 +430,12 @@ def run_sweep(scenario: Scenario, varies: list[Vary], out: str | Path, *,
             futures = [client.submit(_evaluate_task, scenario, points[i], i, noise_f,
                                      pure=False) for i in todo]
             for fut in as_completed(futures):
-                res = fut.result()
+                try:
+                    res = fut.result()
+                except ScenarioError:  # a point refused: keep only what other points finished
+                    if fresh and not done:
+                        _remove_parts(parts)
+                    raise
                 _atomic_json(parts / f"point_{res['index']:05d}.json", res)
                 done[int(res["index"])] = res
                 if on_point is not None:

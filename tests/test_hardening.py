@@ -454,3 +454,16 @@ def test_scenario_error_survives_pickling():
     back = pickle.loads(pickle.dumps(err))
     assert type(back) is ScenarioError and str(back) == str(err)
     assert (back.section, back.key) == ("run", "duration_s")
+
+
+def test_sweep_with_a_point_that_could_never_finish(tmp_path, capfd):
+    """The refusal comes back from the worker as one line (capfd: the workers' own output
+    too), exit 2, and the sweep leaves nothing behind when no point finished."""
+    path = _write(tmp_path, BASE.replace("duration_s = 1.0e-7", "duration_s = 1e300"))
+    out = tmp_path / "sw.nc"
+    assert main(["sweep", str(path), "--vary", "traps.deep.count=200000:300000:2",
+                 "--workers", "1", "-o", str(out)]) == 2
+    captured = capfd.readouterr()
+    err = _one_line(captured.err)
+    assert "[run] duration_s" in err and "traps.deep.count=" in err
+    _nothing_left(tmp_path)
