@@ -650,8 +650,7 @@ def plot_all(path_nc: str | os.PathLike[str] | Result, outdir: str | os.PathLike
     else:
         res, default_dir = open_result(path_nc), Path(path_nc).parent
         stem = stem or Path(path_nc).stem
-    out = Path(outdir) if outdir is not None else default_dir
-    out.mkdir(parents=True, exist_ok=True)
+    out = Path(outdir) if outdir is not None else default_dir  # made by the first figure
     if res.has("deviation_mean"):  # a sweep file: the validity figure
         return _plot_sweep(res, out, stem)
     if res.sweep_points:

@@ -247,6 +247,7 @@ def test_plot_of_a_file_with_nothing_to_draw_fails(tmp_path, capsys):
     assert main(["plot", str(path), "-o", str(tmp_path / "png")]) == 2
     err = _one_line(capsys.readouterr().err)
     assert "nothing to draw" in err and str(path) in err
+    assert not (tmp_path / "png").exists()  # not even an empty folder
 
 
 # ------------------------------------------------------------------ sweep options
