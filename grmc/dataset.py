@@ -18,13 +18,22 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING
 
-from . import __version__
+from ._version import __version__
 from .atomic import atomic_target
 
 if TYPE_CHECKING:  # pragma: no cover
     import xarray as xr
 
-__all__ = ["Var", "VARIABLES", "COORDINATES", "OutputError", "finish", "validate", "save", "load"]
+__all__ = ["Var", "VARIABLES", "COORDINATES", "OutputError", "FILL_VALUE", "finish", "validate",
+           "save", "load"]
+
+#: Fill value of every floating-point variable: what the file holds where a value is not
+#: defined (a Lorentzian fit that resolved no corner, the histogram row of a species whose
+#: count range was too wide to store, a correlation time of a count that never fluctuates).
+#: It is the netCDF default fill of doubles (NC_FILL_DOUBLE, netCDF User Guide), stored as
+#: the variable's ``_FillValue`` attribute, so netCDF and CF readers (xarray among them)
+#: show these places as missing (NaN) again; the file itself holds no NaN.
+FILL_VALUE = 9.969209968386869e36
 
 
 class OutputError(ValueError):
@@ -217,6 +226,17 @@ VARIABLES: dict[str, Var] = {
                                 "band's Fourier frequencies"),
     "band_frequencies": Var(("frequency_band",), "1",
                             "Fourier frequencies averaged in the band (m)"),
+    "pixel_var": Var(("realization", "species"), "1",
+                     "each pixel's own time-weighted variance of the count", "t: variance"),
+    "pixel_var_lna": Var(("realization", "species"), "1",
+                         "linear-noise variance of each pixel's own model"),
+    "pixel_steady_continuum": Var(("realization", "species"), "1",
+                                  "continuum steady-state count of each pixel's own model"),
+    "psd_lna_pixels": Var(("species", "frequency"), "Hz-1",
+                          "average over the pixels of each pixel's own linear-noise spectrum"),
+    "current_psd_lna_pixels": Var(("frequency",), "A2 Hz-1",
+                                  "average over the pixels of each pixel's own linear-noise "
+                                  "current spectrum"),
 }
 
 
@@ -262,6 +282,8 @@ def finish(ds: xr.Dataset, *, title: str, scenario_toml: str, command: str | Non
     for name in ds.data_vars:
         if ds[name].dtype.kind in "iu":
             ds[name].encoding["_FillValue"] = None
+        elif ds[name].dtype.kind == "f":
+            ds[name].encoding["_FillValue"] = FILL_VALUE
     now = _dt.datetime.now(_dt.timezone.utc).replace(microsecond=0).isoformat()
     if command is None:
         command = " ".join(["grmc", *sys.argv[1:]]) if sys.argv else "grmc"

@@ -48,6 +48,13 @@ def _fit_vars(fits, *, prefix: str, species_dim: bool) -> dict:
     }
 
 
+def _drive_Hz(plan: Plan) -> float | None:
+    """The drive frequency of modulated light (its line and harmonics are left out of the
+    Lorentzian fits), or None [Hz]."""
+    light = plan.scenario.light
+    return light.modulation_frequency_Hz if light.modulated else None
+
+
 def count_fits(plan: Plan, acc: Accumulators, data: dict) -> tuple[dict, dict]:
     """Lorentzian fits of every count spectrum, jackknife errors over trajectory groups."""
     spec = acc.count_spectrum
@@ -55,7 +62,8 @@ def count_fits(plan: Plan, acc: Accumulators, data: dict) -> tuple[dict, dict]:
     psd, (low, high) = spec.mean(), spec.interval(plan)
     groups = spec.group_means(plan)
     fits = [spectra.analyse_spectrum(freqs, psd[s], low[s], high[s], spec.segments(plan),
-                                     batches=None if groups is None else groups[:, s])
+                                     batches=None if groups is None else groups[:, s],
+                                     drive_Hz=_drive_Hz(plan))
             for s in range(psd.shape[0])]
     return _fit_vars(fits, prefix="", species_dim=True), {}
 
@@ -85,7 +93,8 @@ def current_fits(plan: Plan, acc: Accumulators, data: dict) -> tuple[dict, dict]
     groups = spec.group_means(plan)
     cfit = spectra.analyse_spectrum(freqs, cur - shot, c_low - shot, c_high - shot,
                                     spec.segments(plan), band=band,
-                                    batches=None if groups is None else groups - shot)
+                                    batches=None if groups is None else groups - shot,
+                                    drive_Hz=_drive_Hz(plan))
     out.update(_fit_vars([cfit], prefix="current_", species_dim=False))
     return out, {}
 
@@ -117,7 +126,12 @@ def devices(plan: Plan, acc: Accumulators, data: dict) -> tuple[dict, dict]:
     """Each trajectory's drawn dopant and trap counts (``dopants = "poisson"``)."""
     if not plan.poisson:
         return {}, {}
-    return acc.stationary.device_variables(plan)
+    out, coords = acc.stationary.device_variables(plan)
+    # each pixel beside its own theory (like with like), not the pooled spread
+    out.update(population.own_theory(acc.stationary.sorted_rows(),
+                                     lambda c: plan.models.get(c).model, plan.frequencies,
+                                     readout=plan.scenario.readout))
+    return out, coords
 
 
 def pixel_population(plan: Plan, acc: Accumulators, data: dict) -> tuple[dict, dict]:

@@ -29,7 +29,7 @@ from .engine.ensemble import default_workers
 from .plan import OVERSAMPLE, Plan, Prepared, SlicePlan, make_plan, prepare, slice_plan, start_state
 from .readout import describe_current
 from .rounds import RoundBar, run_ensemble, run_rounds
-from .scenario import Scenario
+from .scenario import Scenario, check_counts
 from .theory import theory
 from .window import choose_window, given_run_keys
 
@@ -105,6 +105,7 @@ def run(
                              seed=None if seed is None else int(seed),
                              accuracy=accuracy, band_Hz=None if band_Hz is None
                              else tuple(map(float, band_Hz)), max_seconds=max_seconds)
+    check_counts(scenario)
     rs = scenario.run
     if rs.accuracy is not None:
         return _run_to_accuracy(scenario, first=first, workers=workers, progress=progress,
