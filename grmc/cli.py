@@ -251,9 +251,9 @@ def main(argv: list[str] | None = None) -> int:
         return EXIT_USAGE
     except Exception as exc:  # known refusals of the solvers: one clear line, no traceback
         from .continuum import ContinuumError
-        from .exact import StateSpaceTooLarge
+        from .exact import ExactRefusal
 
-        if isinstance(exc, (ContinuumError, StateSpaceTooLarge)):
+        if isinstance(exc, (ContinuumError, ExactRefusal)):
             where = getattr(args, "scenario", None) or getattr(args, "file", "")
             print(f"grmc: error: {where}: {exc}", file=sys.stderr)
             return EXIT_USAGE

@@ -640,7 +640,14 @@ class Resolvent:
         lu = self._lu.get(i)
         if lu is None:
             w = 2.0 * math.pi * float(self.freqs[i])
-            lu = spla.splu((1j * w) * self._eye - self._Q, permc_spec=_ORDERING)
+            try:
+                lu = spla.splu((1j * w) * self._eye - self._Q, permc_spec=_ORDERING)
+            except RuntimeError as exc:  # SuperLU: a pivot lost to rounding
+                rates = np.abs(self._Q.diagonal())
+                raise ExactUnresolved(
+                    f"the resolvent at {self.freqs[i]:.3g} Hz is singular in double precision "
+                    f"(exit rates from {rates.min():.3g} to {rates.max():.3g} 1/s; {exc})"
+                ) from None
             size = lu.L.nnz + lu.U.nnz
             if self._stored + size <= _LU_BUDGET:
                 self._lu[i] = lu
