@@ -12,6 +12,7 @@ import numpy as np
 from . import continuum, exact
 from .dataset import finish
 from .model import build_model
+from .next_order import mean_correction
 from .readout import counts_events, describe_current, exact_current, lna_current
 from .scenario import Scenario
 
@@ -65,6 +66,7 @@ def exact_dataset(scenario: Scenario, *, command: str | None = None,
         "stationary_var": (("species",), res.var),
         "steady_continuum": (("species",), ss),
         "var_lna": (("species",), np.diag(lna.covariance).copy()),
+        "mean_next_order": (("species",), mean_correction(model)),
         "relaxation_time_lna": (("mode",), np.asarray(lna.relaxation_times, dtype=float)),
         "psd": (("species", "frequency"), res.psd),
         "psd_lna": (("species", "frequency"), psd_lna),

@@ -13,6 +13,7 @@ import numpy as np
 
 from . import continuum
 from .model import build_model, nominal_counts, trap_means
+from .next_order import next_order
 from .scenario import Scenario
 
 __all__ = ["summarize", "format_summary", "FEW_CARRIERS", "TOO_MANY_EVENTS"]
@@ -21,6 +22,8 @@ __all__ = ["summarize", "format_summary", "FEW_CARRIERS", "TOO_MANY_EVENTS"]
 FEW_CARRIERS = 10.0
 #: Above this many events a run is too long to be practical on one machine.
 TOO_MANY_EVENTS = 1.0e10
+#: Above this relative size the next-order correction of a mean is worth a warning.
+LARGE_CORRECTION = 0.10
 #: Rounding a density to a count may move it by this fraction before we warn.
 ROUNDING_TOLERANCE = 0.05
 
@@ -69,6 +72,13 @@ def summarize(scenario: Scenario) -> dict:
                 f"{name}: continuum mean count {mean:.3g} is below {FEW_CARRIERS:g}; the "
                 "continuum and linear-noise answers are not to be trusted here"
             )
+    correction = next_order(model).delta
+    for name, mean, d in zip(model.species, ss, correction):
+        if mean > 0 and abs(d) > LARGE_CORRECTION * mean:
+            warnings.append(
+                f"{name}: the next-order correction of the mean ({d:+.3g}) is "
+                f"{100 * abs(d) / mean:.0f} % of the continuum mean: the continuum and linear-noise "
+                "answers are off by about that much (use grmc exact or grmc run)")
     if events > TOO_MANY_EVENTS:
         warnings.append(
             f"the run needs about {events:.2g} events (more than {TOO_MANY_EVENTS:.0e}); "
@@ -100,6 +110,7 @@ def summarize(scenario: Scenario) -> dict:
         "channels": [c.name for c in model.channels],
         "steady_continuum": {s: float(v) for s, v in zip(model.species, ss)},
         "var_lna": {s: float(v) for s, v in zip(model.species, var)},
+        "mean_next_order": {s: float(v) for s, v in zip(model.species, correction)},
         "steady_density_cm3": {s: float(v) / vol for s, v in zip(model.species, ss)},
         "start_state": {s: int(v) for s, v in zip(model.species, x0)},
         "relaxation_times_s": times,
@@ -130,6 +141,18 @@ def _eng(x: float) -> str:
     return f"{x:.4g}"
 
 
+def _next_order_lines(info: dict) -> list[str]:
+    """The next-order correction of each mean beside the continuum mean, with its size."""
+    out = ["", f"  {'species':<22}{'continuum':>16}{'next order':>14}{'relative':>12}"
+              "   (predicted exact mean - continuum mean, counts)"]
+    for s in info["species"]:
+        m = info["steady_continuum"][s]
+        d = info["mean_next_order"][s]
+        rel = f"{100 * d / m:+.3g} %" if m > 0 else "-"
+        out.append(f"  {s:<22}{_eng(m):>16}{_eng(d):>14}{rel:>12}")
+    return out
+
+
 def format_summary(info: dict) -> str:
     """A human-readable table of :func:`summarize`'s result."""
     lines = [f"{info['title']}", f"  volume            {_eng(info['volume_cm3'])} cm^3"]
@@ -154,6 +177,7 @@ def format_summary(info: dict) -> str:
         fano = v / m if m > 0 else float("nan")
         lines.append(f"  {s:<22}{_eng(m):>16}{_eng(info['steady_density_cm3'][s]):>18}"
                      f"{_eng(v):>14}{fano:>8.3f}{info['start_state'][s]:>10}")
+    lines.extend(_next_order_lines(info))
     lines.append("")
     if info["relaxation_times_s"]:
         times = ", ".join(_eng(t) for t in info["relaxation_times_s"])
