@@ -119,6 +119,7 @@ __all__ = [
     "ExactResult",
     "ExactUnresolved",
     "Resolvent",
+    "estimate_states",
     "StateSpace",
     "StateSpaceTooLarge",
     "TruncationWarning",
@@ -1207,6 +1208,37 @@ def _initial_truncation(model: Model, x0, max_pairs) -> _Truncation:
                 if x0 is not None:
                     low[k], high[k] = min(low[k], int(x0[2 + k])), max(high[k], int(x0[2 + k]))
     return _Truncation(J, low, high, cap)
+
+
+def estimate_states(model: Model) -> int:
+    """States the truncation of :func:`solve` is expected to need, without building it.
+
+    The trap configurations of the first truncation (every occupancy of a small level, the
+    window about the linear-noise law of a large one) times the minority levels of a
+    Poisson-like count about the continuum minority mean (``j* + 10 sqrt(j*) + 10``, at
+    least the first J).  An estimate: the solve itself enlarges the truncation where the
+    exact law needs it.
+
+    Parameters
+    ----------
+    model : Model
+
+    Returns
+    -------
+    int  [states]
+    """
+    from .continuum import ContinuumError, steady_state
+
+    tr = _initial_truncation(model, None, None)
+    try:
+        with np.errstate(all="ignore"), warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            x = steady_state(model)
+        minority = float(min(x[0], x[1]))
+    except (ContinuumError, ValueError, np.linalg.LinAlgError):
+        minority = 0.0
+    levels = max(_FIRST_J, math.ceil(minority + 10.0 * math.sqrt(minority) + 10.0)) + 1
+    return int(min(float(tr.n_configs) * levels, float(np.iinfo(np.int64).max)))
 
 
 def _minority_of(x) -> int:
