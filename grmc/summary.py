@@ -75,12 +75,7 @@ def summarize(scenario: Scenario) -> dict:
                 "continuum and linear-noise answers are not to be trusted here"
             )
     correction = next_order(model).delta
-    for name, mean, d in zip(model.species, ss, correction):
-        if mean > 0 and abs(d) > LARGE_CORRECTION * mean:
-            warnings.append(
-                f"{name}: the next-order correction of the mean ({d:+.3g}) is "
-                f"{100 * abs(d) / mean:.0f} % of the continuum mean: the continuum and linear-noise "
-                "answers are off by about that much (use grmc exact or grmc run)")
+    warnings.extend(_correction_warnings(model.species, ss, correction))
     if events > TOO_MANY_EVENTS:
         warnings.append(
             f"the run needs about {events:.2g} events (more than {TOO_MANY_EVENTS:.0e}); "
@@ -168,6 +163,18 @@ def _eng(x: float) -> str:
     if x == 0 or not math.isfinite(x):
         return f"{x:g}"
     return f"{x:.4g}"
+
+
+def _correction_warnings(species, ss, correction) -> list[str]:
+    """Where the next-order correction exceeds LARGE_CORRECTION of the continuum mean."""
+    out = []
+    for name, mean, d in zip(species, ss, correction):
+        if mean > 0 and abs(d) > LARGE_CORRECTION * mean:
+            out.append(
+                f"{name}: the next-order correction of the mean ({d:+.3g}) is "
+                f"{100 * abs(d) / mean:.0f} % of the continuum mean: the continuum and "
+                "linear-noise answers are off by about that much (use grmc exact or grmc run)")
+    return out
 
 
 def _next_order_lines(info: dict) -> list[str]:
