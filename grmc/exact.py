@@ -814,7 +814,7 @@ def transient(
     method : {"auto", "sparse", "dense"}
         ``"sparse"``: truncated Taylor steps of fixed size (see Notes); ``"dense"``:
         propagators by :func:`scipy.linalg.expm`; ``"auto"``: dense for stiff chains of at
-        most 1000 states whose sparse cost would exceed a dense one.
+        most 1000 states whose estimated sparse time would exceed the dense one.
     stationary : ndarray, shape (n,), optional
         The stationary law of the reflecting generator.  Once the normalised ``p(t)`` is
         within 1e-12 of it (L1), later times take it, scaled by the probability retained at
@@ -867,9 +867,14 @@ def transient(
     key[positive] = np.exp(np.round(np.log(steps[positive]) * 1e12) / 1e12)
     n_distinct = np.unique(key[positive]).size
     norm = float(abs(A).sum(axis=0).max()) if n else 0.0
-    sparse_cost = norm * float(steps.sum()) * max(A.nnz, 1)
+    # rough seconds of each path: a sparse product costs its Python call (~15 us) plus
+    # ~5 ns per stored entry; an expm costs ~(10 + log2 ||A dt||) dense products of 2 n^3
+    # flops at ~1 Gflop/s, then one matrix-vector product per time
+    sparse_cost = 1.5 * norm * float(steps.sum()) * (15e-6 + 5e-9 * A.nnz)
+    squarings = 10.0 + math.log2(max(norm * float(steps.max(initial=0.0)), 1.0))
+    dense_cost = n_distinct * squarings * 2e-9 * float(n) ** 3 + ts.size * 2e-9 * n * n
     dense = method == "dense" or (
-        method == "auto" and n <= _DENSE_MAX and sparse_cost > n_distinct * float(n) ** 3)
+        method == "auto" and n <= _DENSE_MAX and sparse_cost > dense_cost)
     if not dense and stationary is None and 1.5 * norm * float(ts[-1]) > _MAX_PRODUCTS:
         raise ExactUnresolved(_transient_too_long(norm, float(ts[-1])))
     stepper = _DenseSteps(A) if dense else _TaylorSteps(A)
