@@ -640,20 +640,33 @@ class Resolvent:
         """``(i w_i I - Q)^-1 rhs`` at frequency number ``i``."""
         lu = self._lu.get(i)
         if lu is None:
-            w = 2.0 * math.pi * float(self.freqs[i])
-            try:
-                lu = spla.splu((1j * w) * self._eye - self._Q, permc_spec=_ORDERING)
-            except RuntimeError as exc:  # SuperLU: a pivot lost to rounding
-                rates = np.abs(self._Q.diagonal())
-                raise ExactUnresolved(
-                    f"the resolvent at {self.freqs[i]:.3g} Hz is singular in double precision "
-                    f"(exit rates from {rates.min():.3g} to {rates.max():.3g} 1/s; {exc})"
-                ) from None
-            size = lu.L.nnz + lu.U.nnz
+            lu = self._factor(i)
+            size = lu[0].L.nnz + lu[0].U.nnz
             if self._stored + size <= _LU_BUDGET:
                 self._lu[i] = lu
                 self._stored += size
-        return lu.solve(np.asarray(rhs, dtype=np.complex128))
+        factor, scale = lu
+        return factor.solve(scale[:, None] * np.asarray(rhs, dtype=np.complex128).reshape(
+            scale.size, -1)).reshape(np.shape(rhs))
+
+    def _factor(self, i: int):
+        """LU of the rows of ``i w I - Q`` divided by ``w + |Q_kk|`` (entries of modulus <= 1,
+        the resolvent's counterpart of the embedded jump chain), COLAMD first, then minimum
+        degree on ``A^T + A`` where rounding left a zero pivot."""
+        w = 2.0 * math.pi * float(self.freqs[i])
+        scale = 1.0 / (w + np.abs(self._Q.diagonal().real))
+        A = sp.diags(scale) @ ((1j * w) * self._eye - self._Q)
+        A = sp.csc_matrix(A)
+        err = None
+        for spec in (_ORDERING, "MMD_AT_PLUS_A"):
+            try:
+                return spla.splu(A, permc_spec=spec), scale
+            except RuntimeError as exc:  # SuperLU: a pivot lost to rounding
+                err = exc
+        rates = np.abs(self._Q.diagonal())
+        raise ExactUnresolved(
+            f"the resolvent at {self.freqs[i]:.3g} Hz is singular in double precision "
+            f"(exit rates from {rates.min():.3g} to {rates.max():.3g} 1/s; {err})")
 
 
 def spectral_matrix(

@@ -96,17 +96,25 @@ def test_one_level_box_of_1e14_cm3_solves_with_its_spectra():
 
 def test_cold_lit_volume_whose_rates_span_fifty_decades():
     """4 K, n_i = 1e-5 cm^-3, a level 0.05 eV above mid-gap (emission ~1e50 times faster than
-    capture): the stationary law used to end in a RuntimeError; it now balances every
-    species' mean production and loss (d<x>/dt = 0) to 1e-9 of the largest mean rate, with a
-    relative residual below 1e-10."""
-    scen = grmc.load_scenario(text=box(temperature_K="4.0", intrinsic_density_cm3="1.0e-5",
-                                       energy_eV="0.05", generation_cm3_s="1.0e15"))
-    model = grmc.build_model(scen)
-    res = exact.solve(model)
+    capture): the stationary law balances every species' mean production and loss
+    (d<x>/dt = 0) to 1e-9 of the largest mean rate, with a relative residual below 1e-10, and
+    the electrons' spectrum (row-scaled resolvents) integrates to their variance (Parseval,
+    trapezoid in log f with the flat and 1/f^2 tails) to 2 %; its transient, which would
+    need steps of 1e-51 s, is refused with the reason."""
+    text = box(temperature_K="4.0", intrinsic_density_cm3="1.0e-5", energy_eV="0.05",
+               generation_cm3_s="1.0e15")
+    model = grmc.build_model(grmc.load_scenario(text=text))
+    f = np.geomspace(1e-2, 1e8, 201)
+    res = exact.solve(model, freqs=f)
     assert res.residual < 1e-10
     rates = res.probability @ model.propensities(res.states)
     drift = rates @ model.stoich
     assert np.all(np.abs(drift) <= 1e-9 * rates.max())
+    y = res.psd[0]
+    total = np.trapezoid(y * f, np.log(f)) + y[0] * f[0] + y[-1] * f[-1]
+    assert total == pytest.approx(res.var[0], rel=0.02)
+    with pytest.raises(ExactUnresolved, match="sparse products"):
+        exact.solve(model, times=[0.0, 1e-6])
 
 
 def test_transient_beyond_reach_is_refused_at_once():
