@@ -161,6 +161,12 @@ _CHUNK = 1 << 18
 #: Most factor entries the :class:`Resolvent` keeps (16 bytes each) [entries].
 _LU_BUDGET = 4_000_000
 
+#: Chains of at least this many states solve a frequency near an already factorised one by
+#: preconditioned GMRES instead of a new LU [states].
+_REUSE_MIN = 2000
+#: Largest ratio of two frequencies for which a kept LU preconditions the other [1].
+_REUSE_RATIO = 4.0
+
 #: Trap levels of more than this many traps keep a window of occupancies [count].
 _WINDOW_MIN = 64
 
@@ -624,7 +630,11 @@ class Resolvent:
     -----
     The count spectra and the flux spectrum of one chain solve with the same matrices; the
     factorisations are kept (up to about ``_LU_BUDGET`` stored entries in all) so that each
-    frequency is factorised once.  Ordering: COLAMD (see ``_ORDERING``).
+    frequency is factorised once.  Ordering: COLAMD (see ``_ORDERING``).  In chains of at
+    least ``_REUSE_MIN`` states a frequency within a factor ``_REUSE_RATIO`` of a factorised
+    one is solved by GMRES preconditioned with that factorisation (Saad, Iterative Methods for
+    Sparse Linear Systems, 2003, ch. 9, from memory), falling back to its own LU when GMRES
+    does not reach a relative residual of 1e-13.
     """
 
     def __init__(self, Q: sp.spmatrix, freqs: np.ndarray):
@@ -638,16 +648,54 @@ class Resolvent:
 
     def solve(self, i: int, rhs: np.ndarray) -> np.ndarray:
         """``(i w_i I - Q)^-1 rhs`` at frequency number ``i``."""
+        b = np.asarray(rhs, dtype=np.complex128).reshape(self._Q.shape[0], -1)
         lu = self._lu.get(i)
+        if lu is None and self._Q.shape[0] >= _REUSE_MIN:
+            x = self._solve_near(i, b)
+            if x is not None:
+                return x.reshape(np.shape(rhs))
         if lu is None:
-            lu = self._factor(i)
-            size = lu[0].L.nnz + lu[0].U.nnz
-            if self._stored + size <= _LU_BUDGET:
-                self._lu[i] = lu
-                self._stored += size
+            lu = self._keep(i, self._factor(i))
         factor, scale = lu
-        return factor.solve(scale[:, None] * np.asarray(rhs, dtype=np.complex128).reshape(
-            scale.size, -1)).reshape(np.shape(rhs))
+        return factor.solve(scale[:, None] * b).reshape(np.shape(rhs))
+
+    def _keep(self, i: int, lu):
+        """Keep a factorisation; over the budget, the older ones make room for it."""
+        size = lu[0].L.nnz + lu[0].U.nnz
+        if self._stored + size > _LU_BUDGET:
+            self._lu.clear()
+            self._stored = 0
+        self._lu[i] = lu
+        self._stored += size
+        return lu
+
+    def _solve_near(self, i: int, b: np.ndarray) -> np.ndarray | None:
+        """GMRES preconditioned by the factorisation of the nearest kept frequency within a
+        factor ``_REUSE_RATIO``: ``M^-1 (i w I - Q) = I + i (w - w_j) M^-1``, whose spectrum
+        stays near 1 when ``w / w_j`` is near 1 (a few iterations instead of a new LU).
+        None when no kept frequency is near or GMRES does not reach 1e-13."""
+        if not self._lu:
+            return None
+        f = float(self.freqs[i])
+        j = min(self._lu, key=lambda k: abs(math.log(self.freqs[k] / f)))
+        if abs(math.log(self.freqs[j] / f)) > math.log(_REUSE_RATIO):
+            return None
+        factor, scale_j = self._lu[j]
+        w = 2.0 * math.pi * f
+        scale = 1.0 / (w + np.abs(self._Q.diagonal().real))
+        A = sp.csr_matrix(sp.diags(scale) @ ((1j * w) * self._eye - self._Q))
+        n = A.shape[0]
+        # the kept factor solves (scale_j rows of (i w_j I - Q)); undo the row scaling
+        M = spla.LinearOperator((n, n), dtype=np.complex128,
+                                matvec=lambda v: factor.solve(scale_j * (np.ravel(v) / scale)))
+        out = np.empty_like(b)
+        for c in range(b.shape[1]):
+            x, info = spla.gmres(A, scale * b[:, c], M=M, rtol=1e-13, atol=0.0, restart=40,
+                                 maxiter=3)
+            if info != 0:
+                return None
+            out[:, c] = x
+        return out
 
     def _factor(self, i: int):
         """LU of the rows of ``i w I - Q`` divided by ``w + |Q_kk|`` (entries of modulus <= 1,
