@@ -178,6 +178,23 @@ VARIABLES: dict[str, Var] = {
     "telegraph_fraction_stderr": Var(("noise_frequency",), "1",
                                      "binomial standard error of telegraph_fraction"),
     "probability_outside": Var((), "1", "probability mass outside the truncated state space"),
+    "flicker_coefficient": Var(("species",), "1",
+                               "K of S = K / f^alpha fitted over the 1/f band (S at 1 Hz)"),
+    "flicker_coefficient_stderr": Var(("species",), "1", "standard error of flicker_coefficient"),
+    "flicker_exponent": Var(("species",), "1", "alpha of S = K / f^alpha"),
+    "flicker_exponent_stderr": Var(("species",), "1", "standard error of flicker_exponent"),
+    "flicker_corner_frequency": Var(("species",), "Hz",
+                                    "frequency where K / f^alpha meets a resolved G-R plateau"),
+    "current_flicker_coefficient": Var((), "A2",
+                                       "K of the current's S = K / f^alpha (S at 1 Hz)"),
+    "current_flicker_coefficient_stderr": Var((), "A2",
+                                              "standard error of current_flicker_coefficient"),
+    "current_flicker_exponent": Var((), "1", "alpha of the current's S = K / f^alpha"),
+    "current_flicker_exponent_stderr": Var((), "1",
+                                           "standard error of current_flicker_exponent"),
+    "current_flicker_corner_frequency": Var((), "Hz",
+                                            "frequency where the current's K / f^alpha meets "
+                                            "its white level or G-R plateau"),
 }
 
 

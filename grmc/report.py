@@ -46,6 +46,41 @@ def _fit_text(ds, name: str, kind_name: str, i: int) -> str:
     return ("two Lorentzians: " if kind == "two" else "") + ", ".join(parts)
 
 
+def _sublevel(name) -> bool:
+    """A sub-level of a trap level with a spread of time constants (kept in the file, left
+    out of the table, which shows the level's total)."""
+    return "#" in str(name)
+
+
+def _flicker_lines(ds) -> list[str]:
+    """The 1/f fit S = K / f^alpha per species and for the current."""
+    if "flicker_exponent" not in ds:
+        return []
+    band = ds.attrs.get("flicker_band_Hz")
+    where = f" over {_g(band[0], 3)} - {_g(band[1], 3)} Hz" if band is not None else ""
+    out = [f"  1/f fit S = K / f^alpha{where} (K: S at 1 Hz):"]
+    rows = [(str(s), i) for i, s in enumerate(ds["species"].values) if not _sublevel(s)]
+    if "current_flicker_exponent" in ds:
+        rows.append(("current", None))
+    for name, i in rows:
+        pre = "" if i is not None else "current_"
+
+        def val(key):
+            v = ds[pre + key]
+            return float(v if i is None else v[i])
+
+        a, ae = val("flicker_exponent"), val("flicker_exponent_stderr")
+        if not math.isfinite(a):
+            out.append(f"    {name:<20}no fit")
+            continue
+        unit = "A^2/Hz" if i is None else "counts^2/Hz"
+        fc = val("flicker_corner_frequency")
+        corner = f", meets the flat level at {_g(fc, 3)} Hz" if math.isfinite(fc) else ""
+        out.append(f"    {name:<20}alpha {_g(a, 4)} ± {_g(ae, 2)}, K {_g(val('flicker_coefficient'), 4)}"
+                   f" ± {_g(val('flicker_coefficient_stderr'), 2)} {unit}{corner}")
+    return out
+
+
 def format_run_table(ds) -> str:
     """Per species: Monte Carlo mean ± standard error against the continuum, variance
     against the linear-noise value, and a flag (``!``) where they differ by more than
@@ -65,6 +100,8 @@ def format_run_table(ds) -> str:
             f"{'MC var':>12}{'± s.e.':>10}{'LNA var':>12}{'':>9}")
     lines.append(head)
     for i, s in enumerate(ds["species"].values):
+        if _sublevel(s):
+            continue
         m = float(ds["stationary_mean"][i])
         me = float(ds["stationary_mean_stderr"][i])
         c = float(ds["steady_continuum"][i])
@@ -84,13 +121,18 @@ def format_run_table(ds) -> str:
     if "tau_spectrum" in ds:
         lines.append("  time constants from the spectra, tau = 1/(2 pi f_c):")
         for i, s in enumerate(ds["species"].values):
-            lines.append(f"    {str(s):<20}{_fit_text(ds, 'tau_spectrum', 'spectrum_kind', i)}")
+            if not _sublevel(s):
+                lines.append(f"    {str(s):<20}"
+                             f"{_fit_text(ds, 'tau_spectrum', 'spectrum_kind', i)}")
+    lines.extend(_flicker_lines(ds))
     if "relaxation_time_lna" in ds and ds["relaxation_time_lna"].size:
         times = ", ".join(_g(t, 3) for t in ds["relaxation_time_lna"].values)
         lines.append(f"  linear-noise relaxation times:      {times} s")
     if "response_amplitude" in ds:
         lines.append("  response at the drive frequency (amplitude, phase vs sin(2 pi f t)):")
         for i, s in enumerate(ds["species"].values):
+            if _sublevel(s):
+                continue
             a, ae = float(ds["response_amplitude"][i]), float(ds["response_amplitude_stderr"][i])
             p, pe = float(ds["response_phase"][i]), float(ds["response_phase_stderr"][i])
             ca, cp = (float(ds["response_amplitude_continuum"][i]),

@@ -124,6 +124,11 @@ class Trap:
     kind : "acceptor" or "donor"  Charge states 0/-1 (acceptor) or +1/0 (donor)
     electron_capture_cm3_s : float  c_n = sigma_n v_th [cm^3 s^-1]
     hole_capture_cm3_s : float  c_p = sigma_p v_th [cm^3 s^-1]
+    spread_decades : float  D: capture and emission coefficients of the level's traps are
+        scaled together by a factor spread log-uniformly over D decades below the given ones
+        (0: every trap as given) [decades]
+    sublevels_per_decade : int or None  Sub-levels per decade of that spread (None: the
+        model's default, two) [1/decade]
     """
 
     label: str
@@ -134,6 +139,8 @@ class Trap:
     kind: Literal["acceptor", "donor"]
     electron_capture_cm3_s: float
     hole_capture_cm3_s: float
+    spread_decades: float = 0.0
+    sublevels_per_decade: int | None = None
 
 
 @dataclass(frozen=True)
@@ -200,6 +207,8 @@ class RunSettings:
     settle_s : float  Simulated and discarded before t = 0 [s]
     seed : int  Seed of every random stream
     dopants : "rounded" or "poisson"  How dopant and trap counts are set per trajectory
+    flicker_band_Hz : (float, float) or None  Band of the 1/f fit (default: the inner band
+        of the trap levels' spread of time constants) [Hz]
     """
 
     trajectories: int = 256
@@ -208,6 +217,7 @@ class RunSettings:
     settle_s: float = 0.0
     seed: int = 1
     dopants: Literal["rounded", "poisson"] = "rounded"
+    flicker_band_Hz: tuple[float, float] | None = None
 
 
 @dataclass(frozen=True)
@@ -365,6 +375,8 @@ _TRAP = {
     "electron_cross_section_cm2": _F(lo=0.0),
     "hole_cross_section_cm2": _F(lo=0.0),
     "thermal_velocity_cm_s": _F(lo=0.0, lo_open=True),
+    "spread_decades": _F(default=0.0, lo=0.0, hi=12.0),
+    "sublevels_per_decade": _I(lo=1, hi=20),
 }
 _LIGHT = {
     "generation_cm3_s": _F(default=0.0, lo=0.0),
@@ -380,6 +392,7 @@ _RUN = {
     "settle_s": _F(default=0.0, lo=0.0),
     "seed": _I(default=1, lo=0),
     "dopants": _S(default="rounded", choices=("rounded", "poisson")),
+    "flicker_band_Hz": _Key("floatlist", lo=0.0, lo_open=True),
 }
 _POPULATION = {
     "frequencies_Hz": _Key("floatlist", required=True, lo=0.0, lo_open=True),
@@ -472,6 +485,8 @@ def _check_value(src: str, section: str, key: str, value: Any, spec: _Key) -> An
         bad = value <= spec.lo if spec.lo_open else value < spec.lo
         if bad:
             fail(f"must be {_fmt_bound(spec)}, got {value!r}")
+    if spec.hi is not None and value > spec.hi:
+        fail(f"must be <= {spec.hi:g}, got {value!r}")
     return value
 
 
@@ -553,6 +568,11 @@ def _parse_trap(src: str, index: int, table: Any, volume: Volume) -> Trap:
             src, section, "thermal_velocity_cm_s",
             "is used only with a cross section; it would be ignored here",
         )
+    if vals["sublevels_per_decade"] is not None and vals["spread_decades"] == 0.0:
+        raise ScenarioError(
+            src, section, "sublevels_per_decade",
+            "is used only with spread_decades > 0; it would be ignored here",
+        )
     if caps["electron"] == 0.0 and caps["hole"] == 0.0:
         raise ScenarioError(
             src, section, "electron_capture_cm3_s",
@@ -567,6 +587,8 @@ def _parse_trap(src: str, index: int, table: Any, volume: Volume) -> Trap:
         kind=vals["kind"],
         electron_capture_cm3_s=caps["electron"],
         hole_capture_cm3_s=caps["hole"],
+        spread_decades=vals["spread_decades"],
+        sublevels_per_decade=vals["sublevels_per_decade"],
     )
 
 
@@ -655,6 +677,10 @@ def parse_scenario(data: dict[str, Any], *, source: str = "<string>", text: str 
     _check_modulation(src, light, data.get("light", {}))
     start = Start(**_read_table(src, "start", data.get("start", {}), _START))
     run = RunSettings(**_read_table(src, "run", data.get("run", {}), _RUN))
+    band = run.flicker_band_Hz
+    if band is not None and (len(band) != 2 or not band[1] > band[0]):
+        raise ScenarioError(src, "run", "flicker_band_Hz",
+                            f"expected two increasing frequencies [f1, f2], got {list(band)}")
     readout = None
     if "readout" in data:
         readout = Readout(**_read_table(src, "readout", data["readout"], _READOUT))

@@ -18,7 +18,7 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
-from . import continuum, population, spectra
+from . import continuum, flicker, population, spectra, spread
 from .dataset import finish
 from .engine.ensemble import Cancelled, chunk_bounds, map_chunks
 from .model import (
@@ -28,6 +28,7 @@ from .model import (
     build_model,
     draw_counts,
     nominal_counts,
+    with_every_trap,
 )
 from .readout import current_gradient, describe_current, lna_current
 from .scenario import Scenario, ScenarioError
@@ -118,8 +119,7 @@ def _check_pixels(scenario: Scenario, draws) -> None:
 def _all_channels(scenario: Scenario, counts: Counts) -> Model:
     """The scenario's model with every trap level present: the channel names (and flows) of
     a population run."""
-    full = dataclasses.replace(counts, traps=tuple(max(t, 1) for t in counts.traps))
-    return build_model(scenario, counts=full, check_type=False)
+    return build_model(scenario, counts=with_every_trap(scenario, counts), check_type=False)
 
 
 @dataclass
@@ -193,9 +193,9 @@ def run(
     cache = _ModelCache(scenario, names)
     base = cache.get(counts0)
     model0 = base.model
-    S = model0.n_species
-    ref = base.x0.astype(np.float64)  # shift for numerically safe sums of squares
-    excess = np.zeros(S, dtype=np.int64)
+    S = len(model0.output_species)  # the file's species (a spread level's total added)
+    ref = model0.project(base.x0.astype(np.float64))  # shift for safe sums of squares
+    excess = np.zeros(model0.n_species, dtype=np.int64)
     excess[0] = excess[1] = scenario.start.excess_pairs
     segments = spectra.choose_segments(n_traj, n_samples)
     dt_fine = duration / (n_samples * OVERSAMPLE)
@@ -228,6 +228,7 @@ def run(
             res = _simulate_sliced(simulate_trajectory, prep,
                                    stream_state(rs.seed, i, purpose=PURPOSE_ENGINE), rs,
                                    excess, plan, cancel, tick)
+            res = spread.project_trajectory(res, prep.model, duration)
             _reduce_one(acc, i, res, prep, ref, dt_fine, segments, a_e, a_h, len(names),
                         readout is not None, None if n_groups is None else i // group_size,
                         bands)
@@ -261,17 +262,17 @@ def run(
     ss = base.steady
     lna = continuum.lna(model0)
     t = np.arange(n_samples) * (duration / n_samples)
-    x_cont = continuum.transient(model0, mean_t[0], t).T
+    x_cont = model0.project(continuum.transient(model0, spread.lift(model0, mean_t[0]), t)).T
     freqs = spectra.periodogram_frequencies(n_samples, duration, segments=segments,
                                             oversample=OVERSAMPLE)
     smat = continuum.lna_psd(model0, freqs)
-    psd_lna = np.real(np.einsum("iif->if", smat))
+    psd_lna = np.real(np.einsum("iif->if", model0.project_matrix(smat)))
 
     k_total = n * segments
     psd = acc.psd / n
     psd_low, psd_high = spectra.welch_interval(psd, k_total)
 
-    species = list(model0.species)
+    species = list(model0.output_species)
     data = {
         "count_mean": (("species", "t"), mean_t.T),
         "count_var": (("species", "t"), var_t.T),
@@ -280,8 +281,8 @@ def run(
         "stationary_mean_stderr": (("species",), st_err),
         "stationary_var": (("species",), st_var),
         "stationary_var_stderr": (("species",), var_err),
-        "steady_continuum": (("species",), ss),
-        "var_lna": (("species",), np.diag(lna.covariance).copy()),
+        "steady_continuum": (("species",), model0.project(ss)),
+        "var_lna": (("species",), np.diag(model0.project_matrix(lna.covariance)).copy()),
         "relaxation_time_lna": (("mode",), np.asarray(lna.relaxation_times, dtype=float)),
         "psd": (("species", "frequency"), psd),
         "psd_low": (("species", "frequency"), psd_low),
@@ -323,6 +324,15 @@ def run(
                                         k_total, band=band, batches=None if cgroups is None
                                         else cgroups - shot)
         data.update(_fit_vars([cfit], prefix="current_", species_dim=False))
+    band_1f = flicker.usable_band(rs.flicker_band_Hz or spread.spread_band(model0, ss), freqs)
+    if band_1f is not None:  # the 1/f read-out K / f^alpha (grmc.flicker)
+        top = [fit.components[-1].S0 if fit.components else np.nan for fit in fits]
+        cur = {} if readout is None else {
+            "current_psd": cur_psd - shot, "current_level": shot or (
+                cfit.components[-1].S0 if cfit.components else np.nan),
+            "current_groups": None if cgroups is None else cgroups - shot}
+        data.update(flicker.flicker_variables(freqs, psd, k_total, band_1f, groups=groups,
+                                              plateaus=np.array(top), **cur))
 
     if model0.modulation is not None:
         data.update(_response_vars(acc, model0, readout is not None))
@@ -387,6 +397,8 @@ def run(
         })
     for tr, total in zip(scenario.traps, counts0.traps):
         attrs[f"trap_count_{tr.label}"] = int(total)
+    if band_1f is not None:
+        attrs["flicker_band_Hz"] = np.array(band_1f)
     return finish(ds, title=scenario.title, scenario_toml=scenario.text, command=command, **attrs)
 
 
@@ -619,6 +631,9 @@ def _response_vars(acc: _Acc, model: Model, current: bool) -> dict:
         np.array([row[1] for row in acc.quad]))
     c_amp, c_ph = continuum.drive_response(model, channel=channel, kind=kind,
                                            frequency_Hz=freq, depth=depth)
+    resp = c_amp * np.exp(1j * c_ph)  # on the model's species; the file's are sums of them
+    if model.has_sublevels:
+        c_amp, c_ph = np.abs(model.project(resp)), np.angle(model.project(resp))
     out = {
         "response_amplitude": (("species",), amp),
         "response_amplitude_stderr": (("species",), amp_err),
@@ -632,7 +647,6 @@ def _response_vars(acc: _Acc, model: Model, current: bool) -> dict:
             np.array([row[2] for row in acc.quad]))
         # linearised: the current's continuum response is its gradient on the count response
         # (the modulated optical channel itself moves no carrier across the boundary)
-        resp = c_amp * np.exp(1j * c_ph)
         i_c = current_gradient(model, continuum.steady_state(model)) @ resp
         out.update({
             "current_response_amplitude": ((), float(i_amp)),
