@@ -823,6 +823,9 @@ class ExactResult:
     transient_var : ndarray or None, shape (T, S)  Variances at ``times`` [count^2]
     transient_mass_lost : ndarray or None, shape (T,)  Probability absorbed by the FSP sink
         by each time (bounds the L1 error of the transient law)
+    transient_output_var : ndarray or None, shape (T, outputs)  Variances at ``times`` of
+        the model's output species (a spread trap level's total among them), only when they
+        differ from the species [count^2]
     flux_mean : float or None  Mean collected flux ``sum_r flow_r <a_r>`` [carriers/s]
         (None when no channel has a flow)
     flux_white : float or None  Its white (high-frequency) level ``2 sum_r flow_r^2 <a_r>``
@@ -851,6 +854,7 @@ class ExactResult:
     transient_mean: np.ndarray | None = None
     transient_var: np.ndarray | None = None
     transient_mass_lost: np.ndarray | None = None
+    transient_output_var: np.ndarray | None = None
     flux_mean: float | None = None
     flux_white: float | None = None
     flux_psd: np.ndarray | None = None
@@ -1137,7 +1141,7 @@ def solve(
         flux_white = 2.0 * float(pi_s @ np.asarray(K2.sum(axis=1)).ravel())
         if freqs is not None:
             flux_mean, flux_psd = flux_spectrum(Qs, pi_s, K, K2, freqs)
-    t_mean = t_var = None
+    t_mean = t_var = t_out_var = None
     if times is not None:
         if lost is None:  # max_pairs fixed and the start outside: refuse
             raise ValueError(f"the start state {x_start} is outside the truncation J = {J}")
@@ -1147,6 +1151,11 @@ def solve(
         t_var = np.empty_like(t_mean)
         for k in range(times.size):  # centred sums: no cancellation for large counts
             t_var[k] = (P[k] @ (X - t_mean[k]) ** 2) / mass[k]
+        if model.has_sublevels:  # the output species' sums need their own variances
+            Y = model.project(X)
+            y_mean = (P @ Y) / mass[:, None]
+            t_out_var = np.stack([(P[k] @ (Y - y_mean[k]) ** 2) / mass[k]
+                                  for k in range(times.size)])
     return ExactResult(
         species=tuple(model.species),
         states=space.states,
@@ -1168,6 +1177,7 @@ def solve(
         transient_mean=t_mean,
         transient_var=t_var,
         transient_mass_lost=lost,
+        transient_output_var=t_out_var,
         flux_mean=flux_mean,
         flux_white=flux_white,
         flux_psd=flux_psd,

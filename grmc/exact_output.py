@@ -59,28 +59,38 @@ def exact_dataset(scenario: Scenario, *, command: str | None = None,
     ss = continuum.steady_state(model)
     lna = continuum.lna(model)
     smat = continuum.lna_psd(model, freqs)
-    psd_lna = np.real(np.einsum("iif->if", smat))
+    # the file's species: with a spread trap level its total beside the sub-levels (the
+    # projections below are identities otherwise)
+    proj, pmat = model.project, model.project_matrix
+    sub = model.has_sublevels
     data = {
-        "stationary_mean": (("species",), res.mean),
-        "stationary_var": (("species",), res.var),
-        "steady_continuum": (("species",), ss),
-        "var_lna": (("species",), np.diag(lna.covariance).copy()),
+        "stationary_mean": (("species",), proj(res.mean)),
+        "stationary_var": (("species",), np.diag(pmat(res.covariance)).copy() if sub
+                           else res.var),
+        "steady_continuum": (("species",), proj(ss)),
+        "var_lna": (("species",), np.diag(pmat(lna.covariance)).copy()),
         "relaxation_time_lna": (("mode",), np.asarray(lna.relaxation_times, dtype=float)),
-        "psd": (("species", "frequency"), res.psd),
-        "psd_lna": (("species", "frequency"), psd_lna),
-        "count_mean": (("species", "t"), res.transient_mean.T),
-        "count_var": (("species", "t"), res.transient_var.T),
+        "psd": (("species", "frequency"), np.real(np.einsum("iif->if", pmat(res.psd_matrix)))
+                if sub else res.psd),
+        "psd_lna": (("species", "frequency"), np.real(np.einsum("iif->if", pmat(smat)))),
+        "count_mean": (("species", "t"), proj(res.transient_mean).T),
+        "count_var": (("species", "t"), (res.transient_output_var if sub
+                                         else res.transient_var).T),
         "count_continuum": (("species", "t"),
-                            continuum.transient(model, res.transient_mean[0], t).T),
+                            proj(continuum.transient(model, res.transient_mean[0], t)).T),
         "probability_outside": ((), float(res.mass_outside)),
     }
-    lo = int(res.states.min())
-    hi = int(res.states.max())
+    states = np.rint(proj(res.states)).astype(np.int64)
+    lo = int(states.min())
+    hi = int(states.max())
     values = np.arange(lo, hi + 1, dtype=np.int64)
-    hist = np.zeros((model.n_species, values.size))
-    for s in range(model.n_species):
-        v, p = res.marginal(s)
-        hist[s, v - lo] = p
+    hist = np.zeros((states.shape[1], values.size))
+    for s in range(states.shape[1]):
+        if sub:
+            np.add.at(hist[s], states[:, s] - lo, res.probability)
+        else:
+            v, p = res.marginal(s)
+            hist[s, v - lo] = p
     data["count_histogram"] = (("species", "count_value"), hist)
     readout = scenario.readout
     attrs = {}
@@ -97,7 +107,7 @@ def exact_dataset(scenario: Scenario, *, command: str | None = None,
                       "readout_current": describe_current(model)})
     coords = {
         "t": ("t", t),
-        "species": ("species", np.array(model.species, dtype=object)),
+        "species": ("species", np.array(model.output_species, dtype=object)),
         "frequency": ("frequency", freqs),
         "count_value": ("count_value", values),
     }

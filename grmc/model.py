@@ -565,6 +565,18 @@ class Model:
         out[0], out[1] = e, e - d
         return out
 
+    def counts_without_trap(self, level: int) -> Counts:
+        """This device's counts with one trap fewer in trap species ``level`` (index among
+        the trap species, sub-levels counted), e.g. to see what one single trap adds."""
+        split = [list(sub) for sub in self.counts.level_split(self.scenario)]
+        flat = [(k, j) for k, sub in enumerate(split) for j in range(len(sub))]
+        k, j = flat[level]
+        split[k][j] -= 1
+        traps = tuple(sum(sub) for sub in split)
+        if self.counts.split is None and all(len(sub) == 1 for sub in split):
+            return replace(self.counts, traps=traps)
+        return replace(self.counts, traps=traps, split=tuple(tuple(sub) for sub in split))
+
     def with_counts(self, counts: Counts) -> Model:
         """The same scenario with other dopant and trap counts (one device of a population)."""
         return build_model(self.scenario, counts=counts)

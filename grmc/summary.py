@@ -11,7 +11,7 @@ import math
 
 import numpy as np
 
-from . import continuum
+from . import continuum, spread
 from .model import build_model, nominal_counts, trap_means
 from .scenario import Scenario
 
@@ -54,14 +54,17 @@ def summarize(scenario: Scenario) -> dict:
         if trap.count is None:
             rounding(f"trap level '{trap.label}'", mean, got)
 
-    ss = continuum.steady_state(model)
+    ss_model = continuum.steady_state(model)
     lna = continuum.lna(model)
-    var = np.diag(lna.covariance)
-    x0 = model.nearest_neutral_state(ss)
-    rate = float(model.propensities(x0).sum())
+    x0_model = model.nearest_neutral_state(ss_model)
+    # the file's species: a spread level's total beside its sub-levels
+    ss, var = model.project(ss_model), np.diag(model.project_matrix(lna.covariance))
+    x0 = np.rint(model.project(x0_model)).astype(np.int64)
+    band = spread.spread_band(model, ss_model)
+    rate = float(model.propensities(x0_model).sum())
     run = scenario.run
     events = rate * (run.settle_s + run.duration_s) * run.trajectories
-    for name, mean in zip(model.species, ss):
+    for name, mean in zip(model.output_species, ss):
         if name.startswith("trapped:"):
             continue
         if mean < FEW_CARRIERS:
@@ -90,7 +93,7 @@ def summarize(scenario: Scenario) -> dict:
         "title": scenario.title,
         "volume_cm3": vol,
         "surface_area_cm2": scenario.volume.surface_area_cm2,
-        "species": list(model.species),
+        "species": list(model.output_species),
         "counts": {
             "donors": counts.donors,
             "acceptors": counts.acceptors,
@@ -98,10 +101,11 @@ def summarize(scenario: Scenario) -> dict:
         },
         "conserved_charge": model.charge,
         "channels": [c.name for c in model.channels],
-        "steady_continuum": {s: float(v) for s, v in zip(model.species, ss)},
-        "var_lna": {s: float(v) for s, v in zip(model.species, var)},
-        "steady_density_cm3": {s: float(v) / vol for s, v in zip(model.species, ss)},
-        "start_state": {s: int(v) for s, v in zip(model.species, x0)},
+        "steady_continuum": {s: float(v) for s, v in zip(model.output_species, ss)},
+        "var_lna": {s: float(v) for s, v in zip(model.output_species, var)},
+        "steady_density_cm3": {s: float(v) / vol for s, v in zip(model.output_species, ss)},
+        "start_state": {s: int(v) for s, v in zip(model.output_species, x0)},
+        "flicker_band_Hz": None if band is None else list(band),
         "relaxation_times_s": times,
         "event_rate_per_trajectory_s": rate,
         "expected_events": events,
@@ -155,6 +159,9 @@ def format_summary(info: dict) -> str:
         lines.append(f"  {s:<22}{_eng(m):>16}{_eng(info['steady_density_cm3'][s]):>18}"
                      f"{_eng(v):>14}{fano:>8.3f}{info['start_state'][s]:>10}")
     lines.append("")
+    if info.get("flicker_band_Hz"):
+        lo, hi = info["flicker_band_Hz"]
+        lines.append(f"  1/f band of the spread      {_eng(lo)} - {_eng(hi)} Hz")
     if info["relaxation_times_s"]:
         times = ", ".join(_eng(t) for t in info["relaxation_times_s"])
         lines.append(f"  relaxation times (LNA)      {times} s")
