@@ -178,6 +178,16 @@ VARIABLES: dict[str, Var] = {
     "telegraph_fraction_stderr": Var(("noise_frequency",), "1",
                                      "binomial standard error of telegraph_fraction"),
     "probability_outside": Var((), "1", "probability mass outside the truncated state space"),
+    "pixel_current_noise_median": Var(("noise_frequency",), "A2 Hz-1",
+                                      "median over the pixels of the current noise"),
+    "pixel_count_noise_median": Var(("noise_frequency",), "Hz-1",
+                                    "median over the pixels of the electron-count noise"),
+    "pixel_current_relative_noise_median": Var(("noise_frequency",), "Hz-1",
+                                               "median over the pixels of the current noise "
+                                               "divided by the squared mean current"),
+    "pixel_count_relative_noise_median": Var(("noise_frequency",), "Hz-1",
+                                             "median over the pixels of the electron-count "
+                                             "noise divided by the squared mean count"),
     "flicker_coefficient": Var(("species",), "1",
                                "K of S = K / f^alpha fitted over the 1/f band (S at 1 Hz)"),
     "flicker_coefficient_stderr": Var(("species",), "1", "standard error of flicker_coefficient"),

@@ -9,7 +9,11 @@ fitted line meets a flat level (a G-R plateau or the white shot level).
 The fit is a straight line in log-log, ``log S_hat = log K - alpha log f + e``.  An average
 of k periodogram values is ``S chi^2_{2k} / 2k``, so e has the known mean ``psi(k) - log k``
 and variance ``psi'(k)`` at every frequency (psi the digamma function); the line is fitted
-by ordinary least squares after removing that mean, which is unbiased.  Standard errors:
+by least squares after removing that mean, which is unbiased, with each periodogram value
+weighted by the share of log f it stands for (1/f on the linear Fourier grid), so every
+decade of the band counts alike: a spectrum that bends near one end of the band (a sum of
+Lorentzians near the ends of its spread) then tilts the line no more than at the other,
+where the even weights of the linear grid would let the top decade decide.  Standard errors:
 jackknife over equal groups of trajectories where they are given (honours any correlation
 between frequencies, e.g. of a few telegraph traps), else from the known variance psi'(k)
 and the degrees of freedom of the interval (independent periodogram values).  numpy and
@@ -24,7 +28,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import special
 
-__all__ = ["PowerLawFit", "fit_power_law", "corner_frequency", "usable_band",
+__all__ = ["PowerLawFit", "fit_power_law", "corner_frequency", "usable_band", "fit_band",
            "flicker_variables"]
 
 #: Fewest periodogram values a power-law fit accepts.
@@ -68,10 +72,11 @@ def _nan_fit(band, n: int, why: str) -> PowerLawFit:
     return PowerLawFit(nan, nan, nan, nan, band, n, nan, "", why)
 
 
-def _line(logf: np.ndarray, y: np.ndarray) -> np.ndarray:
-    """Least-squares (log K, alpha) of y = log K - alpha log f."""
+def _line(logf: np.ndarray, y: np.ndarray, w: np.ndarray) -> np.ndarray:
+    """Weighted least-squares (log K, alpha) of y = log K - alpha log f."""
     X = np.stack([np.ones_like(logf), -logf], axis=1)
-    return np.linalg.lstsq(X, y, rcond=None)[0]
+    sw = np.sqrt(w)
+    return np.linalg.lstsq(X * sw[:, None], y * sw, rcond=None)[0]
 
 
 def fit_power_law(freqs: np.ndarray, psd: np.ndarray, n_segments: float, *,
@@ -96,8 +101,8 @@ def fit_power_law(freqs: np.ndarray, psd: np.ndarray, n_segments: float, *,
     Notes
     -----
     ``log S_hat(f) = log K - alpha log f + e``, ``E e = psi(k) - log k``,
-    ``var e = psi'(k)`` (the log of a scaled chi-squared with 2k degrees of freedom); without
-    batches ``cov(log K, alpha) = psi'(k) (X^T X)^-1``.  Jackknife: leave one group out,
+    ``var e = psi'(k)`` (the log of a scaled chi-squared with 2k degrees of freedom); weights
+    ``w_i ~ 1/f_i``; without batches ``cov = psi'(k) (X^T W X)^-1 X^T W^2 X (X^T W X)^-1``.  Jackknife: leave one group out,
     refit (with k (B - 1) / B), variance ``(B - 1)/B sum (theta_i - theta_bar)^2``.
 
     References
@@ -113,9 +118,11 @@ def fit_power_law(freqs: np.ndarray, psd: np.ndarray, n_segments: float, *,
         return _nan_fit(tuple(map(float, band)), n,
                         f"only {n} usable points in the band: too few for a power law")
     lf, ls = np.log(f[keep]), np.log(s[keep])
+    w = 1.0 / f[keep]  # equal weight per unit of log f on a linear grid
+    w = w / w.mean()
     k = float(n_segments)
     offset, var = float(special.digamma(k) - math.log(k)), float(special.polygamma(1, k))
-    theta = _line(lf, ls - offset)
+    theta = _line(lf, ls - offset, w)
     resid = ls - offset - (theta[0] - theta[1] * lf)
     chi2_dof = float(resid @ resid / var / (n - 2))
     used = (float(f[keep][0]), float(f[keep][-1]))
@@ -129,13 +136,16 @@ def fit_power_law(freqs: np.ndarray, psd: np.ndarray, n_segments: float, *,
         for i in range(b):
             rest = (total - b_arr[i]) / (b - 1)
             ok = rest > 0
-            reps.append(_line(lf[ok], np.log(rest[ok]) - off_b))
+            reps.append(_line(lf[ok], np.log(rest[ok]) - off_b, w[ok]))
         reps = np.array(reps)
         cov_diag = (b - 1) / b * np.sum((reps - reps.mean(axis=0)) ** 2, axis=0)
         errors = f"jackknife over {b} groups"
     else:
+        # weighted least squares with equal known variances: the sandwich
+        # var (X^T W X)^-1 X^T W^2 X (X^T W X)^-1
         X = np.stack([np.ones_like(lf), -lf], axis=1)
-        cov_diag = np.diag(var * np.linalg.inv(X.T @ X))
+        bread = np.linalg.inv(X.T @ (X * w[:, None]))
+        cov_diag = np.diag(var * bread @ (X.T @ (X * (w**2)[:, None])) @ bread)
         errors = "interval degrees of freedom"
     K = math.exp(theta[0])
     return PowerLawFit(K=K, K_err=K * math.sqrt(cov_diag[0]), alpha=float(theta[1]),
@@ -162,17 +172,35 @@ def corner_frequency(K: float, alpha: float, level: float) -> float:
     return float((K / level) ** (1.0 / alpha))
 
 
-def usable_band(band: tuple[float, float] | None, freqs: np.ndarray
-                ) -> tuple[float, float] | None:
+def usable_band(band: tuple[float, float] | None, freqs: np.ndarray, *,
+                symmetric: bool = False) -> tuple[float, float] | None:
     """A band cut to the frequencies a run resolves without bias: above the two lowest
     periodogram frequencies (window leakage) and below a fifth of the sampling rate
-    (aliasing, bin averaging) [Hz]; None when nothing is left or no band is given."""
+    (aliasing, bin averaging) [Hz]; None when nothing is left or no band is given.
+
+    With ``symmetric`` the cut band is narrowed further to stay centred (in log f) on the
+    given one: a sum of log-uniformly spread Lorentzians is symmetric in log f about the
+    centre of its spread, so a centred band keeps the bends at its two ends balanced.
+    """
     if band is None:
         return None
     f = np.asarray(freqs, dtype=float)
     lo = max(float(band[0]), float(f[min(2, f.size - 1)]))
     hi = min(float(band[1]), 0.4 * float(f[-1]))
+    if symmetric and hi > lo:
+        centre = math.sqrt(float(band[0]) * float(band[1]))
+        half = min(math.log(centre / lo), math.log(hi / centre))
+        lo, hi = centre * math.exp(-half), centre * math.exp(half)
     return (lo, hi) if hi > lo else None
+
+
+def fit_band(user_band: tuple[float, float] | None, spread_band: tuple[float, float] | None,
+             freqs: np.ndarray) -> tuple[float, float] | None:
+    """The band of the 1/f fit: the user's where given, else the inner band of the trap
+    levels' spread, centred; either cut to what the run resolves (:func:`usable_band`) [Hz]."""
+    if user_band is not None:
+        return usable_band(user_band, freqs)
+    return usable_band(spread_band, freqs, symmetric=True)
 
 
 def flicker_variables(freqs: np.ndarray, psd: np.ndarray, n_segments: float,

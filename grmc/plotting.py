@@ -45,7 +45,7 @@ if TYPE_CHECKING:  # pragma: no cover
     from matplotlib.axes import Axes
 
 __all__ = ["plot_all", "plot_event_rates", "plot_histogram", "plot_psd", "plot_transient",
-           "plot_validity", "plot_population", "plot_worst_pixels"]
+           "plot_validity", "plot_population", "plot_worst_pixels", "plot_population_sweep"]
 
 DPI = 150
 _PANEL = (6.4, 4.3)  # inches per panel
@@ -180,6 +180,7 @@ def plot_psd(ds: xr.Dataset, species_or_current: str = "current", ax: Axes | Non
         ax.annotate(f"$f_c$ = {_si(fc, 'Hz')}\n$\\tau$ = {_si(tau, 's')}", xy=(fc, 0.04),
                     xycoords=("data", "axes fraction"), xytext=(4, 0),
                     textcoords="offset points", fontsize=8, color=_CORNER_COLOR)
+    _flicker_line(ds, tab, ax)
     if why and not corners:
         lines = textwrap.wrap(f"no corner: {why}", 80)
         short = "\n".join(lines[:2]) + (" ..." if len(lines) > 2 else "")
@@ -198,6 +199,27 @@ def plot_psd(ds: xr.Dataset, species_or_current: str = "current", ax: Axes | Non
     ax.grid(True, which="major", alpha=0.3)
     ax.legend(fontsize=8, loc="lower left" if not why else "upper right")
     return ax
+
+
+def _flicker_line(ds: xr.Dataset, tab: export.SpectrumTable, ax: Axes) -> None:
+    """The fitted K / f^alpha over its band, where the file has the 1/f read-out."""
+    band = ds.attrs.get("flicker_band_Hz")
+    if band is None or "flicker_exponent" not in ds:
+        return
+    if tab.is_current:
+        if "current_flicker_exponent" not in ds:
+            return
+        K, a = float(ds["current_flicker_coefficient"]), float(ds["current_flicker_exponent"])
+        ae = float(ds["current_flicker_exponent_stderr"])
+    else:
+        sel = ds.sel(species=tab.quantity)
+        K, a = float(sel["flicker_coefficient"]), float(sel["flicker_exponent"])
+        ae = float(sel["flicker_exponent_stderr"])
+    if not (math.isfinite(K) and math.isfinite(a)):
+        return
+    f = np.geomspace(float(band[0]), float(band[1]), 50)
+    ax.plot(f, K / f**a, color="C1", lw=1.6,
+            label=f"K/f$^\\alpha$, $\\alpha$ = {a:.3f} ± {ae:.2g}")
 
 
 def plot_transient(ds: xr.Dataset, ax: Axes | None = None, *,
@@ -510,6 +532,65 @@ def plot_validity(ds: xr.Dataset, quantity: str = "mean", ax: Axes | None = None
     return ax
 
 
+def plot_population_sweep(ds: xr.Dataset, which: str = "telegraph", ax: Axes | None = None
+                          ) -> Axes:
+    """A sweep of pixel populations: telegraph-like fraction or median noise against the
+    swept key (the pixel volume).
+
+    Parameters
+    ----------
+    ds : xarray.Dataset  A sweep file with a population at every point
+    which : "telegraph" or "noise"
+        "telegraph": the fraction of pixels one single trap dominates, with its binomial
+        standard error, one line per chosen frequency.  "noise": the median over the pixels
+        of the readout noise relative to the squared mean readout (S / mean^2) [1/Hz], with
+        a line ~ 1/volume through the largest pixel (the area law of 1/f noise, common
+        practice).
+    ax : matplotlib Axes, optional
+
+    Returns
+    -------
+    Axes
+    """
+    ax = _new_axes(ax)
+    if "telegraph_fraction" not in ds:
+        return _note(ax, "this file has no population per sweep point")
+    key = str(ds.attrs.get("swept_keys", "")).split()[0]
+    x = np.asarray(ds[key].values, dtype=float)
+    order = np.argsort(x)
+    x = x[order]
+    freqs = np.asarray(ds["noise_frequency"].values, dtype=float)
+    kind = "current" if "pixel_current_relative_noise_median" in ds else "count"
+    for j, f in enumerate(freqs):
+        if which == "telegraph":
+            y = np.asarray(ds["telegraph_fraction"].values[:, j])[order]
+            e = np.asarray(ds["telegraph_fraction_stderr"].values[:, j])[order]
+            ax.errorbar(x, y, yerr=e, marker="o", ms=4, capsize=2, color=f"C{j}",
+                        label=f"at {_si(f, 'Hz')}")
+        else:
+            y = np.asarray(ds[f"pixel_{kind}_relative_noise_median"].values[:, j])[order]
+            ax.plot(x, y, marker="o", ms=4, color=f"C{j}", label=f"at {_si(f, 'Hz')}")
+            if np.isfinite(y[-1]) and y[-1] > 0:
+                ax.plot(x, y[-1] * x[-1] / x, color=f"C{j}", ls=":", lw=1,
+                        label="~ 1/volume (area law)" if j == 0 else None)
+    ax.set_xscale("log")
+    what = "current" if kind == "current" else "electron count"
+    if which == "telegraph":
+        ax.set_ylim(-0.02, 1.02)
+        ax.set_ylabel("fraction of telegraph-like pixels")
+        sub = "pixels one single trap dominates"
+    else:
+        ax.set_yscale("log")
+        ax.set_ylabel(f"median {what} noise / mean$^2$ [1/Hz]")
+        sub = "median relative noise of the pixels"
+    ax.set_xlabel(f"{key} [{ds[key].attrs.get('units', '')}]")
+    head = _title(ds)
+    ax.set_title(f"{head}\n{sub}" if head else sub, fontsize=10)
+    ax.grid(True, which="both", alpha=0.3)
+    ax.legend(fontsize=8)
+    return ax
+
+
 # --------------------------------------------------------------------------------------------
 def _grid(n: int, size: tuple[float, float] = _PANEL) -> tuple[Any, list[Axes]]:
     from matplotlib.figure import Figure
@@ -555,7 +636,16 @@ def plot_all(path_nc: str | os.PathLike[str], outdir: str | os.PathLike[str] | N
         target = out / f"{stem}_validity.png"
         with atomic_target(target) as tmp:
             fig.savefig(tmp, dpi=DPI, format="png")
-        return [target]
+        if "telegraph_fraction" not in ds:
+            return [target]
+        fig = Figure(figsize=(12.8, 4.8), layout="constrained")
+        axes = [fig.add_subplot(1, 2, i + 1) for i in range(2)]
+        plot_population_sweep(ds, "telegraph", ax=axes[0])
+        plot_population_sweep(ds, "noise", ax=axes[1])
+        second = out / f"{stem}_population_sweep.png"
+        with atomic_target(second) as tmp:
+            fig.savefig(tmp, dpi=DPI, format="png")
+        return [target, second]
     if "sweep" in ds.dims:
         n_sweep = ds.sizes["sweep"]
         ds = ds.isel(sweep=0)
@@ -569,7 +659,9 @@ def plot_all(path_nc: str | os.PathLike[str], outdir: str | os.PathLike[str] | N
             fig.savefig(tmp, dpi=DPI, format="png")
         written.append(target)
 
-    names = [str(s) for s in ds["species"].values] if "species" in ds.coords else []
+    # a spread trap level's sub-levels stay in the file; the figures show the level's total
+    names = ([str(s) for s in ds["species"].values if "#" not in str(s)]
+             if "species" in ds.coords else [])
     if "psd" in ds and names:
         fig, axes = _grid(len(names))
         for name, ax in zip(names, axes):

@@ -295,6 +295,7 @@ def run(
     groups = _groups(acc.group_psd, group_size)
     fits = [spectra.analyse_spectrum(freqs, psd[s], psd_low[s], psd_high[s], k_total,
                                      batches=None if groups is None else groups[:, s])
+            if not spread.is_sublevel(species[s]) else spread.not_analysed(k_total)
             for s in range(S)]
     data.update(_fit_vars(fits, prefix="", species_dim=True))
     if readout is not None:
@@ -324,7 +325,7 @@ def run(
                                         k_total, band=band, batches=None if cgroups is None
                                         else cgroups - shot)
         data.update(_fit_vars([cfit], prefix="current_", species_dim=False))
-    band_1f = flicker.usable_band(rs.flicker_band_Hz or spread.spread_band(model0, ss), freqs)
+    band_1f = flicker.fit_band(rs.flicker_band_Hz, spread.spread_band(model0, ss), freqs)
     if band_1f is not None:  # the 1/f read-out K / f^alpha (grmc.flicker)
         top = [fit.components[-1].S0 if fit.components else np.nan for fit in fits]
         cur = {} if readout is None else {

@@ -18,7 +18,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-__all__ = ["ProjectedTrajectory", "project_trajectory", "lift", "trap_time_constant",
+__all__ = ["ProjectedTrajectory", "project_trajectory", "lift", "is_sublevel", "not_analysed",
+           "trap_time_constant",
            "spread_band", "INNER_TRIM_DECADES"]
 
 #: Decades cut from each end of a spread's band for the 1/f fit: near the ends the sum of
@@ -88,6 +89,22 @@ def lift(model, x_out: np.ndarray) -> np.ndarray:
         return x_out
     index = [model.output_species.index(name) for name in model.species]
     return x_out[..., index]
+
+
+def is_sublevel(name: str) -> bool:
+    """True for a sub-level species ``trapped:<label>#j`` of a spread trap level."""
+    return "#" in str(name)
+
+
+def not_analysed(n_segments: float):
+    """The Lorentzian analysis left out for a sub-level (its Lorentzian is known from the
+    linear-noise answer, and fitting a dozen sub-levels would cost more than the run)."""
+    from .spectra import SpectrumAnalysis
+
+    nan = float("nan")
+    return SpectrumAnalysis(kind="unresolved", components=(), chi2_dof=nan, p_value=nan,
+                            band=(nan, nan), n_segments=float(n_segments),
+                            message="a sub-level of a spread trap level: not analysed")
 
 
 def trap_time_constant(trap, material, n_cm3: float, p_cm3: float) -> float:

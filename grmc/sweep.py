@@ -125,10 +125,11 @@ def _lna_tau(model) -> tuple[np.ndarray, np.ndarray, float]:
     from . import continuum
 
     lna = continuum.lna(model)
-    var = np.diag(lna.covariance).copy()
+    var = np.diag(model.project_matrix(lna.covariance)).copy()
     times = np.asarray(lna.relaxation_times, dtype=float)
     f0 = 1e-4 / (2 * math.pi * times.max()) if times.size else 1.0
-    s0 = np.real(np.einsum("iif->if", continuum.lna_psd(model, np.array([f0]))))[:, 0]
+    smat = model.project_matrix(continuum.lna_psd(model, np.array([f0])))
+    s0 = np.real(np.einsum("iif->if", smat))[:, 0]
     with np.errstate(divide="ignore", invalid="ignore"):
         tau = np.where(var > 0, s0 / (4 * var), np.nan)
     return var, tau, f0
@@ -142,7 +143,9 @@ def evaluate_point(scenario: Scenario, index: int, *, exact_limit: int = EXACT_S
     -------
     dict of JSON-ready values: ``index``, ``method``, ``species`` and per species lists
     ``mean``, ``mean_err``, ``var``, ``var_err``, ``tau``, ``tau_err``, ``continuum``,
-    ``var_lna``, ``tau_lna``.
+    ``var_lna``, ``tau_lna``.  With a ``[population]`` the point is always a Monte Carlo
+    population and the dict also holds its per-frequency ``telegraph_fraction`` (with
+    ``_stderr``), ``noise_median`` and ``relative_noise_median`` (:func:`_population_of`).
     """
     from . import continuum, exact
     from .model import build_model
@@ -150,17 +153,23 @@ def evaluate_point(scenario: Scenario, index: int, *, exact_limit: int = EXACT_S
     model = build_model(scenario)
     ss = continuum.steady_state(model)
     var_lna, tau_lna, f0 = _lna_tau(model)
-    out: dict[str, Any] = {"index": index, "species": list(model.species)}
-    try:
-        res = exact.solve(model, freqs=np.array([f0]), max_states=exact_limit)
-        s0 = res.psd[:, 0]
+    out: dict[str, Any] = {"index": index, "species": list(model.output_species)}
+    res = None
+    if scenario.population is None:  # a population needs its pixels simulated
+        try:
+            res = exact.solve(model, freqs=np.array([f0]), max_states=exact_limit)
+        except exact.StateSpaceTooLarge:
+            res = None
+    if res is not None:
+        s0 = np.real(np.einsum("iif->if", model.project_matrix(res.psd_matrix)))[:, 0]
+        var = np.diag(model.project_matrix(res.covariance))
         with np.errstate(divide="ignore", invalid="ignore"):
-            tau = np.where(res.var > 0, s0 / (4 * res.var), np.nan)
-        zeros = np.zeros(model.n_species)
-        out.update(method="exact", n_states=int(res.n_states), mean=res.mean, mean_err=zeros,
-                   var=res.var, var_err=zeros, tau=tau, tau_err=zeros,
+            tau = np.where(var > 0, s0 / (4 * var), np.nan)
+        zeros = np.zeros(len(model.output_species))
+        out.update(method="exact", n_states=int(res.n_states), mean=model.project(res.mean),
+                   mean_err=zeros, var=var, var_err=zeros, tau=tau, tau_err=zeros,
                    probability_outside=float(res.mass_outside))
-    except exact.StateSpaceTooLarge:
+    else:
         from .simulate import run
 
         seed = _point_seed(scenario.run.seed, index)
@@ -178,9 +187,29 @@ def evaluate_point(scenario: Scenario, index: int, *, exact_limit: int = EXACT_S
         out.update(method="monte carlo", seed=seed, trajectories=int(ds.attrs["trajectories"]),
                    mean=ds["stationary_mean"].values, mean_err=ds["stationary_mean_stderr"].values,
                    var=var, var_err=ds["stationary_var_stderr"].values, tau=tau, tau_err=tau_err)
-    out.update(continuum=ss, var_lna=var_lna, tau_lna=tau_lna)
+        out.update(_population_of(ds))
+    out.update(continuum=model.project(ss), var_lna=var_lna, tau_lna=tau_lna)
     return {k: (np.asarray(v, dtype=float).tolist() if isinstance(v, np.ndarray) else v)
             for k, v in out.items()}
+
+
+def _population_of(ds) -> dict:
+    """A population point's summary per chosen frequency: the fraction of telegraph-like
+    pixels with its binomial standard error, the median pixel noise [unit^2/Hz] and the median
+    relative noise S / mean^2 (mean: the pixel's mean readout) [Hz^-1]; empty without one."""
+    if "telegraph_fraction" not in ds:
+        return {}
+    kind = "current" if "pixel_current_noise" in ds else "count"
+    noise = ds[f"pixel_{kind}_noise"].values
+    mean = ds[f"pixel_{kind}_mean"].values
+    with np.errstate(divide="ignore", invalid="ignore"):
+        rel = noise / mean[:, None] ** 2
+    return {"population_kind": kind,
+            "noise_frequency": ds["noise_frequency"].values,
+            "telegraph_fraction": ds["telegraph_fraction"].values,
+            "telegraph_fraction_stderr": ds["telegraph_fraction_stderr"].values,
+            "noise_median": np.median(noise, axis=0),
+            "relative_noise_median": np.median(rel, axis=0)}
 
 
 def _evaluate_task(scenario: Scenario, assignment: dict, index: int) -> dict:
@@ -336,6 +365,17 @@ def assemble(scenario: Scenario, varies: list[Vary], results: list[dict], *,
         "sweep": ("sweep", np.arange(len(results), dtype=np.int64)),
         "species": ("species", np.array(species, dtype=object)),
     }
+    if all("telegraph_fraction" in r for r in results):  # a population at every point
+        kind = results[0]["population_kind"]
+        nf = ("sweep", "noise_frequency")
+        variables.update({
+            "telegraph_fraction": (nf, stack("telegraph_fraction")),
+            "telegraph_fraction_stderr": (nf, stack("telegraph_fraction_stderr")),
+            f"pixel_{kind}_noise_median": (nf, stack("noise_median")),
+            f"pixel_{kind}_relative_noise_median": (nf, stack("relative_noise_median")),
+        })
+        coords["noise_frequency"] = ("noise_frequency",
+                                     np.asarray(results[0]["noise_frequency"], dtype=float))
     for v in varies:
         coords[v.key] = ("sweep", np.array([r["assignment"][v.key] for r in results]))
     ds = xr.Dataset(variables, coords=coords)
