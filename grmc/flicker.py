@@ -102,7 +102,8 @@ def fit_power_law(freqs: np.ndarray, psd: np.ndarray, n_segments: float, *,
     -----
     ``log S_hat(f) = log K - alpha log f + e``, ``E e = psi(k) - log k``,
     ``var e = psi'(k)`` (the log of a scaled chi-squared with 2k degrees of freedom); weights
-    ``w_i ~ 1/f_i``; without batches ``cov = psi'(k) (X^T W X)^-1 X^T W^2 X (X^T W X)^-1``.  Jackknife: leave one group out,
+    ``w_i ~ 1/f_i``; without batches ``cov = psi'(k) (X^T W X)^-1 X^T W^2 X (X^T W X)^-1``.
+    Jackknife: leave one group out,
     refit (with k (B - 1) / B), variance ``(B - 1)/B sum (theta_i - theta_bar)^2``.
 
     References

@@ -57,7 +57,9 @@ has both capture coefficients (and with them both emission rates) multiplied by
 occupancy in equilibrium is unchanged and only the time scale varies (tunnelling into an
 insulator to a depth z gives the factor exp(-z / lambda); z uniform gives this log-uniform
 law; McWhorter 1957).  Each sub-level is a species ``trapped:<k>#j`` of its own; the output
-files show the level's total occupied count as ``trapped:<k>`` (:attr:`Model.output_matrix`).  Every channel keeps the charge
+files show the level's total occupied count as ``trapped:<k>`` (:attr:`Model.output_matrix`).
+
+Every channel keeps the charge
 
     N_e - N_h + sum_k M_k = D - A + sum_{donor-like k} T_k
 

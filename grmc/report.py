@@ -76,8 +76,9 @@ def _flicker_lines(ds) -> list[str]:
         unit = "A^2/Hz" if i is None else "counts^2/Hz"
         fc = val("flicker_corner_frequency")
         corner = f", meets the flat level at {_g(fc, 3)} Hz" if math.isfinite(fc) else ""
-        out.append(f"    {name:<20}alpha {_g(a, 4)} ± {_g(ae, 2)}, K {_g(val('flicker_coefficient'), 4)}"
-                   f" ± {_g(val('flicker_coefficient_stderr'), 2)} {unit}{corner}")
+        K, Ke = val("flicker_coefficient"), val("flicker_coefficient_stderr")
+        out.append(f"    {name:<20}alpha {_g(a, 4)} ± {_g(ae, 2)}, K {_g(K, 4)} ± {_g(Ke, 2)} "
+                   f"{unit}{corner}")
     return out
 
 
