@@ -332,3 +332,39 @@ def test_population_sweep_telegraph_fraction_falls_with_volume(tmp_path):
     for which in ("telegraph", "noise"):
         ax = plot_population_sweep(ds, which)
         assert len(ax.lines) >= 1 and ax.get_xscale() == "log"
+
+
+def test_bad_spread_exits_2_naming_the_key(tmp_path, capsys):
+    """``grmc check`` on a spread beyond the allowed range: exit status 2 and one line on
+    stderr naming the file, the level and the key, nothing else."""
+    from grmc.cli import main
+
+    path = tmp_path / "bad.toml"
+    path.write_text(layer(decades=13.0))
+    assert main(["check", str(path)]) == 2
+    err = capsys.readouterr().err.strip()
+    assert len(err.splitlines()) == 1
+    assert "bad.toml" in err and "traps.ox" in err and "spread_decades" in err
+
+
+def test_exact_file_sums_the_sublevels(tmp_path):
+    """``grmc exact`` on three single traps spread over six decades: the level's total has
+    the binomial variance sum f (1 - f) of independent two-state traps (common practice),
+    f the Shockley-Read occupancy, to the 1/N_e coupling through ~100 free electrons; its
+    transient variance has relaxed to it by the end of the window."""
+    from grmc.exact_output import exact_dataset
+
+    text = layer(volume=1.0e-15, decades=6.0, traps="count = 3",
+                 run="duration_s = 1.0e-2\nsamples = 256", readout=False)
+    ds = exact_dataset(grmc.load_scenario(text=text))
+    model = build_model(grmc.load_scenario(text=text))
+    occ = model.project(continuum.steady_state(model))[2] / 3.0
+    total = ds.sel(species="trapped:ox")
+    n_e = float(ds["stationary_mean"].sel(species="electrons"))
+    assert float(total["stationary_var"]) == pytest.approx(3 * occ * (1 - occ), rel=3 / n_e)
+    subs = [s for s in ds["species"].values if str(s).startswith("trapped:ox#")]
+    assert float(total["stationary_mean"]) == pytest.approx(
+        float(ds["stationary_mean"].sel(species=subs).sum()), rel=1e-12)
+    assert float(total["count_var"][-1]) == pytest.approx(float(total["stationary_var"]),
+                                                          rel=1e-3)
+    save(ds, tmp_path / "exact.nc")
