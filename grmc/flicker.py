@@ -41,8 +41,8 @@ class PowerLawFit:
 
     Attributes
     ----------
-    K, K_err : float  Coefficient, the spectrum's value at 1 Hz on the fitted line, and its
-        standard error [unit^2/Hz at 1 Hz; unit^2 when alpha = 1]
+    K, K_err : float  Coefficient, the spectrum's value at 1 Hz on the fitted line
+        (S = K / (f / 1 Hz)^alpha), and its standard error [unit^2/Hz]
     alpha, alpha_err : float  Exponent and its standard error [1]
     band : (float, float)  Lowest and highest frequency used [Hz]
     n_points : int  Periodogram values in the band [1]
