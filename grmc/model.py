@@ -666,28 +666,7 @@ def build_model(scenario: Scenario, *, counts: Counts | None = None,
         "impact generation (h)")
     add("impact generation (h)", Cp * ni * ni, (Factor(H),), pair_up, "Auger ehh")
 
-    donor_traps = 0
-    for k, (name, trap, scale, total) in enumerate(levels):
-        M = 2 + k
-        if total <= 0:
-            continue
-        if trap.kind == "donor":
-            donor_traps += total
-        n1 = ni * math.exp(trap.energy_eV / kT)
-        p1 = ni * math.exp(-trap.energy_eV / kT)
-        # a sub-level of a spread level: capture and emission scaled together (scale 1
-        # without a spread, the level exactly as given)
-        cn, cp = trap.electron_capture_cm3_s * scale, trap.hole_capture_cm3_s * scale
-        empty = Factor(M, -1, float(total), float(total))
-        lab = name[len("trapped:"):]
-        add(f"{lab}: electron capture", cn / vol, (Factor(E), empty), ((E, -1), (M, +1)),
-            f"{lab}: electron emission")
-        add(f"{lab}: electron emission", cn * n1, (Factor(M),), ((E, +1), (M, -1)),
-            f"{lab}: electron capture")
-        add(f"{lab}: hole capture", cp / vol, (Factor(H), Factor(M)), ((H, -1), (M, -1)),
-            f"{lab}: hole emission")
-        add(f"{lab}: hole emission", cp * p1, (empty,), ((H, +1), (M, +1)),
-            f"{lab}: hole capture")
+    donor_traps = _add_trap_channels(add, levels, ni, kT, vol)
     readout = scenario.readout
     reservoir = scenario.reservoir
     events = readout is not None and readout.collection == "events"
@@ -723,6 +702,38 @@ def build_model(scenario: Scenario, *, counts: Counts | None = None,
         output_species=tuple(outputs),
         level_scales=tuple(lv[2] for lv in levels),
     )
+
+
+def _add_trap_channels(add, levels, ni: float, kT: float, vol: float) -> int:
+    """The four SRH channels of every trap species (a level, or a sub-level of a spread
+    level, whose capture and emission are scaled together; scale 1 without a spread).
+
+    Returns
+    -------
+    int  Traps of donor-like levels (they enter the conserved charge) [count]
+    """
+    E, H = 0, 1
+    donor_traps = 0
+    for k, (name, trap, scale, total) in enumerate(levels):
+        M = 2 + k
+        if total <= 0:
+            continue
+        if trap.kind == "donor":
+            donor_traps += total
+        n1 = ni * math.exp(trap.energy_eV / kT)
+        p1 = ni * math.exp(-trap.energy_eV / kT)
+        cn, cp = trap.electron_capture_cm3_s * scale, trap.hole_capture_cm3_s * scale
+        empty = Factor(M, -1, float(total), float(total))
+        lab = name[len("trapped:"):]
+        add(f"{lab}: electron capture", cn / vol, (Factor(E), empty), ((E, -1), (M, +1)),
+            f"{lab}: electron emission")
+        add(f"{lab}: electron emission", cn * n1, (Factor(M),), ((E, +1), (M, -1)),
+            f"{lab}: electron capture")
+        add(f"{lab}: hole capture", cp / vol, (Factor(H), Factor(M)), ((H, -1), (M, -1)),
+            f"{lab}: hole emission")
+        add(f"{lab}: hole emission", cp * p1, (empty,), ((H, +1), (M, +1)),
+            f"{lab}: hole capture")
+    return donor_traps
 
 
 def _levels(scenario: Scenario, counts: Counts) -> list[tuple[str, object, float, int]]:
