@@ -6,6 +6,7 @@ import math
 
 import numpy as np
 import pytest
+from test_run import _cf_errors
 
 import grmc
 from grmc import continuum, exact, flicker, spectra, spread
@@ -281,7 +282,7 @@ def test_run_file_sums_sublevels_and_prints_the_fit(spread_run, tmp_path):
     """The file keeps ``trapped:<label>`` as the level's total: its mean is the sum of the
     sub-levels' means, its linear-noise variance the variance of the sum (it does not equal
     the sum of the sub-levels' variances only through their weak coupling); the flicker
-    variables pass the registry and the table prints the fit."""
+    variables pass the registry and the CF checks, and the table prints the fit."""
     scen, ds = spread_run
     species = list(ds["species"].values)
     subs = [s for s in species if s.startswith("trapped:ox#")]
@@ -296,7 +297,8 @@ def test_run_file_sums_sublevels_and_prints_the_fit(spread_run, tmp_path):
     v = float(ds["stationary_var"].sel(species="trapped:ox"))
     ve = float(ds["stationary_var_stderr"].sel(species="trapped:ox"))
     assert abs(v - float(ds["var_lna"].sel(species="trapped:ox"))) < 4 * ve
-    save(ds, tmp_path / "spread.nc")
+    path = save(ds, tmp_path / "spread.nc")
+    assert _cf_errors(path) == []  # IOOS compliance checker, cf:1.11 suite
     table = format_run_table(ds)
     assert "1/f fit" in table and "trapped:ox#" not in table
 
