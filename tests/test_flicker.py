@@ -370,3 +370,31 @@ def test_exact_file_sums_the_sublevels(tmp_path):
     assert float(total["count_var"][-1]) == pytest.approx(float(total["stationary_var"]),
                                                           rel=1e-3)
     save(ds, tmp_path / "exact.nc")
+
+
+def test_single_spread_trap_simulated_is_a_telegraph():
+    """The Monte Carlo spectrum of one trap of a six-decade spread (rounded: it sits at the
+    middle quantile, sub-level 5, s = 10^-2.75) is Machlup's telegraph Lorentzian with that
+    sub-level's dwell times (Machlup, J. Appl. Phys. 25, 341, 1954): at the m frequencies up
+    to a fifth of the sampling rate, the references outside the 95 % intervals (Welch 1967)
+    are Binomial(m, 0.05); 4 of its standard deviations are allowed."""
+    text = layer(decades=6.0, traps="count = 1", readout=False,
+                 run="trajectories = 32\nduration_s = 3.0e-3\nsamples = 1024\nseed = 21")
+    scen = grmc.load_scenario(text=text)
+    model = build_model(scen)
+    assert model.level_counts[5] == 1 and sum(model.level_counts) == 1
+    ds = grmc.run(scen, progress=False, workers=2)
+    n = float(ds["stationary_mean"].sel(species="electrons")) / model.volume_cm3
+    trap = scen.traps[0]
+    ni = scen.material.intrinsic_density_cm3
+    n1 = ni * math.exp(trap.energy_eV / KT_300)
+    s = 10.0 ** -2.75
+    cn = s * trap.electron_capture_cm3_s  # holes (~1e3 cm^-3) and p_1 ~ 1e3 cm^-3 negligible
+    tau_0, tau_1 = 1.0 / (cn * n), 1.0 / (cn * n1)
+    f = ds["frequency"].values
+    sel = f <= ds.attrs["samples"] / ds.attrs["duration_s"] / 5
+    ref = spectra.telegraph_psd(f[sel], tau_1, tau_0)
+    tot = ds.sel(species="trapped:ox")
+    out = np.sum((ref < tot["psd_low"].values[sel]) | (ref > tot["psd_high"].values[sel]))
+    m = int(sel.sum())
+    assert abs(out - 0.05 * m) < 4 * math.sqrt(m * 0.05 * 0.95), (out, m)
