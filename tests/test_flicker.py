@@ -398,3 +398,16 @@ def test_single_spread_trap_simulated_is_a_telegraph():
     out = np.sum((ref < tot["psd_low"].values[sel]) | (ref > tot["psd_high"].values[sel]))
     m = int(sel.sum())
     assert abs(out - 0.05 * m) < 4 * math.sqrt(m * 0.05 * 0.95), (out, m)
+
+
+def test_fit_band_is_cut_to_the_resolved_frequencies():
+    """The fit band: the user's band cut to the resolved frequencies (above the third
+    periodogram frequency, below a fifth of the sampling rate); the spread's band cut the
+    same way and narrowed to stay centred in log f on the spread (by symmetry of a
+    log-uniform superposition, McWhorter 1957)."""
+    f = np.arange(1, 1025) * 100.0  # Nyquist 102.4 kHz
+    assert flicker.fit_band((1.0, 1.0e6), None, f) == pytest.approx((300.0, 0.4 * 102400.0))
+    assert flicker.fit_band((1.0e3, 1.0e4), (1.0, 1.0e9), f) == pytest.approx((1.0e3, 1.0e4))
+    lo, hi = flicker.fit_band(None, (1.0e2, 1.0e6), f)
+    assert hi == pytest.approx(0.4 * 102400.0) and lo == pytest.approx(1.0e4 * 1.0e4 / hi)
+    assert flicker.fit_band(None, None, f) is None
