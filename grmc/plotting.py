@@ -420,10 +420,15 @@ def plot_population(ds: xr.Dataset, which: int | str = "mean", ax: Axes | None =
         j = int(which)
         f = float(ds["noise_frequency"].values[j])
         vals = np.asarray(ds[f"pixel_{kind}_noise"].values[:, j], dtype=float)
+        silent = int(np.sum(~(vals > 0)))  # e.g. pixels without traps that never switched
+        vals = vals[vals > 0]
+        if not vals.size:
+            return _note(ax, f"no pixel has noise at {_si(f, 'Hz')}")
         edges = np.geomspace(vals.min() * 0.9, vals.max() * 1.1, 30)
         ax.hist(vals, bins=edges, color=_MC_COLOR, alpha=0.7)
         ax.set_xscale("log")
-        ax.set_xlabel(f"pixel noise at {_si(f, 'Hz')} [{unit}^2/Hz]")
+        ax.set_xlabel(f"pixel noise at {_si(f, 'Hz')} [{unit}^2/Hz]"
+                      + (f" ({silent} pixels without noise not shown)" if silent else ""))
         sub = f"spread of the noise across pixels at {_si(f, 'Hz')}"
         thr = ds.attrs.get("population_threshold")
         if thr is not None and "fraction_above_threshold" in ds:
