@@ -10,10 +10,12 @@ from __future__ import annotations
 import numpy as np
 
 from . import continuum, exact
+from .bandnoise import band_variables
 from .dataset import finish
 from .model import build_model
 from .readout import counts_events, describe_current, exact_current, lna_current
 from .scenario import Scenario
+from .theory import theory
 
 __all__ = ["exact_dataset", "exact_frequencies", "POINTS_PER_DECADE"]
 
@@ -56,28 +58,21 @@ def exact_dataset(scenario: Scenario, *, command: str | None = None,
     else:
         t_eval, note = t + run.settle_s, "start state evolved through settle_s"
     res = exact.solve(model, freqs=freqs, times=t_eval, x0=x0, max_states=max_states)
-    ss = continuum.steady_state(model)
-    lna = continuum.lna(model)
-    smat = continuum.lna_psd(model, freqs)
+    th = theory(model, freqs, times=t, start=res.transient_mean[0],
+                current=scenario.readout is not None)
     # the file's species: with a spread trap level its total beside the sub-levels (the
-    # projections below are identities otherwise)
+    # projections below are identities otherwise; the theory is projected in grmc.theory)
     proj, pmat = model.project, model.project_matrix
     sub = model.has_sublevels
     data = {
         "stationary_mean": (("species",), proj(res.mean)),
         "stationary_var": (("species",), np.diag(pmat(res.covariance)).copy() if sub
                            else res.var),
-        "steady_continuum": (("species",), proj(ss)),
-        "var_lna": (("species",), np.diag(pmat(lna.covariance)).copy()),
-        "relaxation_time_lna": (("mode",), np.asarray(lna.relaxation_times, dtype=float)),
         "psd": (("species", "frequency"), np.real(np.einsum("iif->if", pmat(res.psd_matrix)))
                 if sub else res.psd),
-        "psd_lna": (("species", "frequency"), np.real(np.einsum("iif->if", pmat(smat)))),
         "count_mean": (("species", "t"), proj(res.transient_mean).T),
         "count_var": (("species", "t"), (res.transient_output_var if sub
                                          else res.transient_var).T),
-        "count_continuum": (("species", "t"),
-                            proj(continuum.transient(model, res.transient_mean[0], t)).T),
         "probability_outside": ((), float(res.mass_outside)),
     }
     states = np.rint(proj(res.states)).astype(np.int64)
@@ -92,17 +87,18 @@ def exact_dataset(scenario: Scenario, *, command: str | None = None,
             v, p = res.marginal(s)
             hist[s, v - lo] = p
     data["count_histogram"] = (("species", "count_value"), hist)
+    data.update(th.variables)
     readout = scenario.readout
     attrs = {}
     if readout is not None:
         cur = exact_current(model, res)
         data["current_mean"] = ((), cur.mean)
         data["current_psd"] = (("frequency",), cur.psd)
-        theory = lna_current(model, freqs, smat=smat, x=ss)
-        data["current_psd_lna"] = (("frequency",), theory.psd)
-        data["current_mean_continuum"] = ((), theory.mean)
         if counts_events(model):
             data["current_shot_noise"] = ((), cur.white)
+        if readout.band_Hz is not None:  # exact spectrum: no sampling interval
+            data.update(band_variables(freqs, cur.psd, readout.band_Hz,
+                                       lna=lambda f: lna_current(model, f).psd))
         attrs.update({"readout_bias_V": readout.bias_V, "readout_length_cm": readout.length_cm,
                       "readout_current": describe_current(model)})
     coords = {

@@ -78,7 +78,8 @@ from functools import cached_property
 
 import numpy as np
 
-from .scenario import Scenario, ScenarioError
+from .materials import BOLTZMANN_EV_K
+from .scenario import EMISSION_DENSITY_MAX, Scenario, ScenarioError
 
 __all__ = [
     "BOLTZMANN_EV_K",
@@ -96,8 +97,6 @@ __all__ = [
     "with_every_trap",
 ]
 
-#: Boltzmann constant [eV/K] (CODATA 2018, exact).
-BOLTZMANN_EV_K = 8.617333262e-5
 #: Elementary charge [C] (CODATA 2018, exact).
 ELEMENTARY_CHARGE_C = 1.602176634e-19
 
@@ -218,6 +217,26 @@ class Channel:
 
 def _nearest_int(x: float) -> int:
     return int(math.floor(x + 0.5))
+
+
+def _emission_densities(scenario: Scenario, trap, kT: float) -> tuple[float, float]:
+    """n_1 = n_i exp(E_t / kT) and p_1 = n_i exp(-E_t / kT) [cm^-3] (Shockley & Read, Phys.
+    Rev. 87, 835, 1952), refused with the key named where they leave double precision.
+
+    Raises
+    ------
+    ScenarioError  When n_i exp(|E_t| / kT) > :data:`grmc.scenario.EMISSION_DENSITY_MAX`.
+    """
+    ni = scenario.material.intrinsic_density_cm3
+    exponent = abs(trap.energy_eV) / kT
+    if math.log(ni) + exponent > math.log(EMISSION_DENSITY_MAX):
+        raise ScenarioError(
+            scenario.source, f"traps.{trap.label}", "energy_eV",
+            f"n_i exp(|E_t - E_i| / kT) = 10^{(math.log(ni) + exponent) / math.log(10):.0f} "
+            f"cm^-3 at {scenario.material.temperature_K:g} K is beyond double precision "
+            f"(limit {EMISSION_DENSITY_MAX:.0e}); check the energy, the temperature and n_i "
+            "(which falls steeply on cooling)")
+    return ni * math.exp(trap.energy_eV / kT), ni * math.exp(-trap.energy_eV / kT)
 
 
 def nominal_counts(scenario: Scenario) -> Counts:
@@ -666,7 +685,7 @@ def build_model(scenario: Scenario, *, counts: Counts | None = None,
         "impact generation (h)")
     add("impact generation (h)", Cp * ni * ni, (Factor(H),), pair_up, "Auger ehh")
 
-    donor_traps = _add_trap_channels(add, levels, ni, kT, vol)
+    donor_traps = _add_trap_channels(add, scenario, levels, kT, vol)
     readout = scenario.readout
     reservoir = scenario.reservoir
     events = readout is not None and readout.collection == "events"
@@ -704,7 +723,7 @@ def build_model(scenario: Scenario, *, counts: Counts | None = None,
     )
 
 
-def _add_trap_channels(add, levels, ni: float, kT: float, vol: float) -> int:
+def _add_trap_channels(add, scenario: Scenario, levels, kT: float, vol: float) -> int:
     """The four SRH channels of every trap species (a level, or a sub-level of a spread
     level, whose capture and emission are scaled together; scale 1 without a spread).
 
@@ -720,8 +739,7 @@ def _add_trap_channels(add, levels, ni: float, kT: float, vol: float) -> int:
             continue
         if trap.kind == "donor":
             donor_traps += total
-        n1 = ni * math.exp(trap.energy_eV / kT)
-        p1 = ni * math.exp(-trap.energy_eV / kT)
+        n1, p1 = _emission_densities(scenario, trap, kT)
         cn, cp = trap.electron_capture_cm3_s * scale, trap.hole_capture_cm3_s * scale
         empty = Factor(M, -1, float(total), float(total))
         lab = name[len("trapped:"):]

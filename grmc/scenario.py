@@ -18,6 +18,9 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Literal
 
+from . import materials as _materials
+from .materials import MaterialError, MaterialRecord
+
 __all__ = [
     "ScenarioError",
     "Material",
@@ -29,6 +32,7 @@ __all__ = [
     "Readout",
     "Reservoir",
     "Scenario",
+    "check_counts",
     "load_scenario",
     "parse_scenario",
     "set_key",
@@ -64,6 +68,11 @@ class ScenarioError(ValueError):
             where = f"{key}: "
         super().__init__(f"{source}: {where}{message}")
 
+    def __reduce__(self):
+        """Rebuilt from its four parts, so that the error survives pickling (a sweep point
+        refused in a Dask worker reaches the command line intact)."""
+        return (type(self), (self.source, self.section, self.key, self.message))
+
 
 # --------------------------------------------------------------------------------------------
 # Dataclasses handed to the rest of the program
@@ -83,6 +92,10 @@ class Material:
     auger_hole_cm6_s : float  Auger coefficient C_p for e + h + h -> h [cm^6 s^-1]
     donors_cm3 : float  Ionized donor density [cm^-3]
     acceptors_cm3 : float  Ionized acceptor density [cm^-3]
+    name : str or None  Library material the values were resolved from (``grmc.materials``)
+    composition_x : float or None  Alloy composition x [1]
+    record : MaterialRecord or None  Every resolved value with its source (what
+        ``grmc check`` prints), with the warnings of laws used outside their range
     """
 
     temperature_K: float
@@ -92,6 +105,9 @@ class Material:
     auger_hole_cm6_s: float = 0.0
     donors_cm3: float = 0.0
     acceptors_cm3: float = 0.0
+    name: str | None = None
+    composition_x: float | None = None
+    record: MaterialRecord | None = field(default=None, compare=False, repr=False)
 
 
 @dataclass(frozen=True)
@@ -207,6 +223,9 @@ class RunSettings:
     settle_s : float  Simulated and discarded before t = 0 [s]
     seed : int  Seed of every random stream
     dopants : "rounded" or "poisson"  How dopant and trap counts are set per trajectory
+    accuracy : float, optional  Target relative 95 % half-width; the run goes in rounds
+    band_Hz : (float, float), optional  Band the accuracy is asked over [Hz]
+    max_seconds : float  Time budget of a run in rounds [s]
     flicker_band_Hz : (float, float) or None  Band of the 1/f fit (default: the inner band
         of the trap levels' spread of time constants) [Hz]
     """
@@ -217,6 +236,9 @@ class RunSettings:
     settle_s: float = 0.0
     seed: int = 1
     dopants: Literal["rounded", "poisson"] = "rounded"
+    accuracy: float | None = None
+    band_Hz: tuple[float, float] | None = None
+    max_seconds: float = 600.0
     flicker_band_Hz: tuple[float, float] | None = None
 
 
@@ -237,6 +259,8 @@ class Readout:
         events per second, so it carries the shot noise of collection as well.  The ohmic
         contacts keep the volume neutral: a carrier leaving through one contact is replaced
         by one entering through the other, so the counts do not change.
+    band_Hz : (float, float) or None  Readout band [f1, f2]: the output gets the rms noise
+        current over it (``current_noise_rms``) [Hz]
     """
 
     bias_V: float
@@ -244,6 +268,7 @@ class Readout:
     electron_mobility_cm2_Vs: float
     hole_mobility_cm2_Vs: float
     collection: Literal["mean", "events"] = "mean"
+    band_Hz: tuple[float, float] | None = None
 
     def transit_times(self) -> tuple[float, float]:
         """(t_tr,n, t_tr,p) = L^2 / (mu bias) [s]; inf where a mobility or the bias is 0."""
@@ -329,9 +354,22 @@ class Scenario:
 # --------------------------------------------------------------------------------------------
 
 
+#: Largest count the event engine holds exactly: it keeps the state in float64 (integers are
+#: exact below 2^53; the margin of one bit leaves room for the excess pairs and the changes).
+COUNT_MAX = 2**52
+#: Largest density accepted [cm^-3]: no solid holds more than about 1e23 atoms per cm^3
+#: (common practice), so anything above this is a typing slip, not a material.
+DENSITY_MAX = 1.0e24
+#: Smallest volume accepted [cm^3]: (0.1 nm)^3, less than one atom.
+VOLUME_MIN = 1.0e-24
+#: Largest n_i exp(|E_t - E_i| / kT) accepted [cm^-3]: beyond it the emission rates and their
+#: products overflow double precision long before any count could follow them.
+EMISSION_DENSITY_MAX = 1.0e150
+
+
 @dataclass(frozen=True)
 class _Key:
-    kind: str  # "float", "int", "str", "list3"
+    kind: str  # "float", "int", "str", "list3", "floatlist", "band"
     required: bool = False
     default: Any = None
     lo: float | None = None  # lower bound
@@ -350,64 +388,80 @@ _SECTIONS_ALLOWED = ("material", "volume", "traps", "light", "start", "run", "re
                      "population", "reservoir")
 
 _MATERIAL = {
-    "temperature_K": _F(required=True, lo=0.0, lo_open=True),
-    "intrinsic_density_cm3": _F(required=True, lo=0.0, lo_open=True),
-    "radiative_cm3_s": _F(default=0.0, lo=0.0),
-    "auger_electron_cm6_s": _F(default=0.0, lo=0.0),
-    "auger_hole_cm6_s": _F(default=0.0, lo=0.0),
-    "donors_cm3": _F(default=0.0, lo=0.0),
-    "acceptors_cm3": _F(default=0.0, lo=0.0),
+    "temperature_K": _F(required=True, lo=1e-3, hi=1e4),
+    "name": _S(choices=_materials.NAMES),
+    "composition_x": _F(),
+    # required without a name; with one, these override the library value one by one
+    "intrinsic_density_cm3": _F(lo=0.0, lo_open=True, hi=DENSITY_MAX),
+    "radiative_cm3_s": _F(lo=0.0, hi=1e-3),
+    "auger_electron_cm6_s": _F(lo=0.0, hi=1e-15),
+    "auger_hole_cm6_s": _F(lo=0.0, hi=1e-15),
+    "electron_thermal_velocity_cm_s": _F(lo=0.0, lo_open=True, hi=3e10),
+    "hole_thermal_velocity_cm_s": _F(lo=0.0, lo_open=True, hi=3e10),
+    "donors_cm3": _F(default=0.0, lo=0.0, hi=DENSITY_MAX),
+    "acceptors_cm3": _F(default=0.0, lo=0.0, hi=DENSITY_MAX),
 }
+#: ``[material]`` keys that are library parameters (the scenario's value wins).
+_MATERIAL_OVERRIDES = ("intrinsic_density_cm3", "radiative_cm3_s", "auger_electron_cm6_s",
+                       "auger_hole_cm6_s", "electron_thermal_velocity_cm_s",
+                       "hole_thermal_velocity_cm_s")
+_MOBILITIES = ("electron_mobility_cm2_Vs", "hole_mobility_cm2_Vs")
 _VOLUME = {
-    "size_nm": _Key("list3", lo=0.0, lo_open=True),
-    "volume_cm3": _F(lo=0.0, lo_open=True),
-    "surface_area_cm2": _F(lo=0.0, lo_open=True),
+    "size_nm": _Key("list3", lo=0.0, lo_open=True, hi=1e7),
+    "volume_cm3": _F(lo=VOLUME_MIN, hi=1e6),
+    "surface_area_cm2": _F(lo=0.0, lo_open=True, hi=1e2),
 }
 _TRAP = {
     "label": _S(required=True, pattern=r"^[A-Za-z0-9_-]+$"),
-    "count": _I(lo=0),
-    "density_cm3": _F(lo=0.0),
-    "areal_density_cm2": _F(lo=0.0),
-    "energy_eV": _F(default=0.0),
+    "count": _I(lo=0, hi=COUNT_MAX),
+    "density_cm3": _F(lo=0.0, hi=DENSITY_MAX),
+    "areal_density_cm2": _F(lo=0.0, hi=1e17),
+    "energy_eV": _F(lo=-10.0, hi=10.0),
+    "energy_below_conduction_eV": _F(lo=-10.0, hi=10.0),
+    "energy_above_valence_eV": _F(lo=-10.0, hi=10.0),
     "kind": _S(default="acceptor", choices=("acceptor", "donor")),
-    "electron_capture_cm3_s": _F(lo=0.0),
-    "hole_capture_cm3_s": _F(lo=0.0),
-    "electron_cross_section_cm2": _F(lo=0.0),
-    "hole_cross_section_cm2": _F(lo=0.0),
-    "thermal_velocity_cm_s": _F(lo=0.0, lo_open=True),
+    "electron_capture_cm3_s": _F(lo=0.0, hi=1e-3),
+    "hole_capture_cm3_s": _F(lo=0.0, hi=1e-3),
+    "electron_cross_section_cm2": _F(lo=0.0, hi=1e-8),
+    "hole_cross_section_cm2": _F(lo=0.0, hi=1e-8),
+    "thermal_velocity_cm_s": _F(lo=0.0, lo_open=True, hi=3e10),
     "spread_decades": _F(default=0.0, lo=0.0, hi=12.0),
     "sublevels_per_decade": _I(lo=1, hi=20),
 }
 _LIGHT = {
-    "generation_cm3_s": _F(default=0.0, lo=0.0),
+    "generation_cm3_s": _F(default=0.0, lo=0.0, hi=1e40),
     "waveform": _S(default="steady", choices=("steady", "off", "sine", "square")),
-    "modulation_frequency_Hz": _F(default=0.0, lo=0.0),
+    "modulation_frequency_Hz": _F(default=0.0, lo=0.0, hi=1e15),
     "modulation_depth": _F(default=0.0, lo=0.0),
 }
-_START = {"excess_pairs": _I(default=0, lo=0)}
+_START = {"excess_pairs": _I(default=0, lo=0, hi=COUNT_MAX)}
 _RUN = {
-    "trajectories": _I(default=256, lo=1),
+    "trajectories": _I(default=256, lo=1, hi=2**53),
     "duration_s": _F(default=1.0e-6, lo=0.0, lo_open=True),
-    "samples": _I(default=4096, lo=16),
+    "samples": _I(default=4096, lo=16, hi=2**53),
     "settle_s": _F(default=0.0, lo=0.0),
-    "seed": _I(default=1, lo=0),
+    "seed": _I(default=1, lo=0, hi=2**63 - 1),
     "dopants": _S(default="rounded", choices=("rounded", "poisson")),
-    "flicker_band_Hz": _Key("floatlist", lo=0.0, lo_open=True),
+    "accuracy": _F(lo=0.0, lo_open=True),
+    "band_Hz": _Key("band"),
+    "max_seconds": _F(default=600.0, lo=0.0, lo_open=True),
+    "flicker_band_Hz": _Key("band"),
 }
 _POPULATION = {
-    "frequencies_Hz": _Key("floatlist", required=True, lo=0.0, lo_open=True),
-    "threshold": _F(lo=0.0, lo_open=True),
+    "frequencies_Hz": _Key("floatlist", required=True, lo=0.0, lo_open=True, hi=1e15),
+    "threshold": _F(lo=0.0, lo_open=True, hi=1e300),
 }
 _READOUT = {
-    "bias_V": _F(required=True),
-    "length_cm": _F(required=True, lo=0.0, lo_open=True),
-    "electron_mobility_cm2_Vs": _F(required=True, lo=0.0),
-    "hole_mobility_cm2_Vs": _F(required=True, lo=0.0),
+    "bias_V": _F(required=True, lo=-1e4, hi=1e4),
+    "length_cm": _F(required=True, lo=1e-8, hi=1e2),
+    "electron_mobility_cm2_Vs": _F(lo=0.0, hi=1e8),  # required without a [material] name
+    "hole_mobility_cm2_Vs": _F(lo=0.0, hi=1e8),
     "collection": _S(default="mean", choices=("mean", "events")),
+    "band_Hz": _Key("band"),
 }
 _RESERVOIR = {
     "carrier": _S(required=True, choices=("electrons", "holes")),
-    "density_cm3": _F(required=True, lo=0.0),
+    "density_cm3": _F(required=True, lo=0.0, hi=DENSITY_MAX),
     "exchange_time_s": _F(lo=0.0, lo_open=True),
 }
 
@@ -436,6 +490,18 @@ def _fmt_bound(spec: _Key) -> str:
     if spec.lo is None:
         return ""
     return f"> {spec.lo:g}" if spec.lo_open else f">= {spec.lo:g}"
+
+
+def _check_range(value: float, spec: _Key, fail) -> None:
+    """Lower and upper bound of a number (upper bounds keep every derived quantity finite)."""
+    if spec.lo is not None:
+        bad = value <= spec.lo if spec.lo_open else value < spec.lo
+        if bad:
+            fail(f"must be {_fmt_bound(spec)}, got {value!r}")
+    if spec.hi is not None and value > spec.hi:
+        hi, got = (f"{spec.hi:d}", f"{value:d}") if spec.kind == "int" else (
+            f"{spec.hi:g}", f"{value:g}")
+        fail(f"must be <= {hi}, got {got} (beyond the range grmc computes in)")
 
 
 def _check_value(src: str, section: str, key: str, value: Any, spec: _Key) -> Any:
@@ -468,8 +534,11 @@ def _check_value(src: str, section: str, key: str, value: Any, spec: _Key) -> An
                 fail(f"expected numbers, got {v!r}")
             if v <= 0:
                 fail(f"every value must be > 0, got {v!r}")
+            _check_range(float(v), spec, fail)
             out.append(float(v))
         return tuple(sorted(out))
+    elif spec.kind == "band":
+        return check_band(value, fail)
     elif spec.kind == "list3":
         if not isinstance(value, list) or len(value) != 3:
             fail(f"expected a list of three edge lengths, got {value!r}")
@@ -479,15 +548,28 @@ def _check_value(src: str, section: str, key: str, value: Any, spec: _Key) -> An
                 fail(f"expected numbers, got {v!r}")
             if v <= 0:
                 fail(f"every edge must be > 0, got {v!r}")
+            _check_range(float(v), spec, fail)
             out.append(float(v))
         return tuple(out)
-    if spec.lo is not None:
-        bad = value <= spec.lo if spec.lo_open else value < spec.lo
-        if bad:
-            fail(f"must be {_fmt_bound(spec)}, got {value!r}")
-    if spec.hi is not None and value > spec.hi:
-        fail(f"must be <= {spec.hi:g}, got {value!r}")
+    _check_range(value, spec, fail)
+    if key == "accuracy" and value >= 1.0:
+        fail(f"must be < 1 (a relative half-width, e.g. 0.05), got {value!r}")
     return value
+
+
+def check_band(value: Any, fail) -> tuple[float, float]:
+    """A frequency band [f1, f2] with 0 < f1 < f2 [Hz]; ``fail(message)`` raises."""
+    if not isinstance(value, (list, tuple)) or len(value) != 2:
+        fail(f"expected [f1, f2] in Hz, got {value!r}")
+    for v in value:
+        if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v):
+            fail(f"expected numbers, got {v!r}")
+    f1, f2 = float(value[0]), float(value[1])
+    if f1 <= 0:
+        fail(f"f1 must be > 0, got {f1!r}")
+    if f1 >= f2:
+        fail(f"f1 must be below f2, got [{f1!r}, {f2!r}]")
+    return f1, f2
 
 
 def _read_table(src: str, section: str, table: Any, schema: dict[str, _Key]) -> dict[str, Any]:
@@ -538,7 +620,100 @@ def _parse_volume(src: str, table: Any) -> Volume:
     return Volume(volume_cm3=vals["volume_cm3"], surface_area_cm2=vals["surface_area_cm2"])
 
 
-def _parse_trap(src: str, index: int, table: Any, volume: Volume) -> Trap:
+def _parse_material(src: str, table: Any, readout: dict | None) -> Material:
+    """``[material]``: the scenario's values, the library's where a name is given.
+
+    ``readout`` holds the ``[readout]`` keys (or None): its mobilities are overrides too.
+    """
+    vals = _read_table(src, "material", table, _MATERIAL)
+    name = vals["name"]
+    if name is None and vals["intrinsic_density_cm3"] is None:
+        raise ScenarioError(src, "material", "intrinsic_density_cm3",
+                            "missing required key (or give a library material: name = "
+                            f"{' | '.join(repr(n) for n in _materials.NAMES)})")
+    overrides = {k: vals[k] for k in _MATERIAL_OVERRIDES}
+    if readout is not None:
+        overrides.update({k: readout[k] for k in _MOBILITIES})
+    band = ("radiative_cm3_s", "auger_electron_cm6_s", "auger_hole_cm6_s")
+    try:
+        record = _materials.resolve(vals["temperature_K"], name=name,
+                                    composition_x=vals["composition_x"], overrides=overrides,
+                                    defaults={k: 0.0 for k in band})
+    except MaterialError as exc:
+        raise ScenarioError(src, "material", exc.key, exc.message) from None
+    if readout is None:  # no readout uses the mobilities: no warnings about them
+        record = record.unused(_MOBILITIES)
+    return Material(
+        temperature_K=vals["temperature_K"],
+        intrinsic_density_cm3=record.value("intrinsic_density_cm3"),
+        radiative_cm3_s=record.value("radiative_cm3_s"),
+        auger_electron_cm6_s=record.value("auger_electron_cm6_s"),
+        auger_hole_cm6_s=record.value("auger_hole_cm6_s"),
+        donors_cm3=vals["donors_cm3"],
+        acceptors_cm3=vals["acceptors_cm3"],
+        name=name,
+        composition_x=record.composition_x,
+        record=record,
+    )
+
+
+def _parse_readout(src: str, vals: dict, material: Material) -> Readout:
+    """``[readout]`` with the mobilities the material resolved where the keys are absent."""
+    vals = dict(vals)
+    for key in _MOBILITIES:
+        if vals[key] is None:
+            vals[key] = material.record.value(key)
+        if vals[key] is None:
+            why = (f"the library has no {key.split('_')[0]} mobility of {material.name}; "
+                   if material.name else "")
+            raise ScenarioError(src, "readout", key, f"missing required key ({why}give it)")
+    return Readout(**vals)
+
+
+_ENERGY_KEYS = ("energy_eV", "energy_below_conduction_eV", "energy_above_valence_eV")
+
+
+def _trap_energy(src: str, section: str, vals: dict, material: Material) -> float:
+    """E_t - E_i [eV] from whichever of the three energy keys is given (default 0)."""
+    which = _exactly_one(src, section, vals, _ENERGY_KEYS, required=False)
+    if which is None:
+        return 0.0
+    if which == "energy_eV":
+        return vals["energy_eV"]
+    record = material.record
+    gap = record.value("band_gap_eV")
+    if gap is None:
+        raise ScenarioError(src, section, which, "a level given from a band edge needs the "
+                            "gap and the intrinsic level: give [material] name")
+    depth = vals[which]
+    if not 0.0 <= depth <= gap:
+        raise ScenarioError(src, section, which, f"must lie in the gap, within [0, {gap:.4g}] "
+                            f"eV for {material.name} at {material.temperature_K:g} K, got "
+                            f"{depth!r}")
+    if which == "energy_below_conduction_eV":
+        return record.trap_energy(below_conduction_eV=depth)
+    return record.trap_energy(above_valence_eV=depth)
+
+
+def _capture(src: str, section: str, vals: dict, material: Material, carrier: str) -> float:
+    """c = given coefficient, or sigma v_th (the trap's v_th, else the material's) [cm^3/s]."""
+    direct, xsec = f"{carrier}_capture_cm3_s", f"{carrier}_cross_section_cm2"
+    got = _exactly_one(src, section, vals, (direct, xsec))
+    if got == direct:
+        return vals[direct]
+    v_th = vals["thermal_velocity_cm_s"]
+    if v_th is None:
+        v_th = material.record.value(f"{carrier}_thermal_velocity_cm_s")
+    if v_th is None:
+        raise ScenarioError(
+            src, section, "thermal_velocity_cm_s",
+            f"{xsec} needs thermal_velocity_cm_s (c = sigma v_th), or a [material] name or "
+            f"{carrier}_thermal_velocity_cm_s that gives it",
+        )
+    return vals[xsec] * v_th
+
+
+def _parse_trap(src: str, index: int, table: Any, volume: Volume, material: Material) -> Trap:
     label = table.get("label") if isinstance(table, dict) else None
     section = f"traps.{label}" if isinstance(label, str) and label else f"traps[{index}]"
     vals = _read_table(src, section, table, _TRAP)
@@ -548,19 +723,7 @@ def _parse_trap(src: str, index: int, table: Any, volume: Volume) -> Trap:
             src, section, "areal_density_cm2",
             "needs a surface area: give [volume] size_nm or surface_area_cm2",
         )
-    caps = {}
-    for carrier in ("electron", "hole"):
-        direct, xsec = f"{carrier}_capture_cm3_s", f"{carrier}_cross_section_cm2"
-        got = _exactly_one(src, section, vals, (direct, xsec))
-        if got == direct:
-            caps[carrier] = vals[direct]
-        else:
-            if vals["thermal_velocity_cm_s"] is None:
-                raise ScenarioError(
-                    src, section, "thermal_velocity_cm_s",
-                    f"{xsec} needs thermal_velocity_cm_s (c = sigma v_th)",
-                )
-            caps[carrier] = vals[xsec] * vals["thermal_velocity_cm_s"]
+    caps = {c: _capture(src, section, vals, material, c) for c in ("electron", "hole")}
     if vals["thermal_velocity_cm_s"] is not None and all(
         vals[f"{c}_cross_section_cm2"] is None for c in ("electron", "hole")
     ):
@@ -583,7 +746,7 @@ def _parse_trap(src: str, index: int, table: Any, volume: Volume) -> Trap:
         count=vals["count"],
         density_cm3=vals["density_cm3"],
         areal_density_cm2=vals["areal_density_cm2"],
-        energy_eV=vals["energy_eV"],
+        energy_eV=_trap_energy(src, section, vals, material),
         kind=vals["kind"],
         electron_capture_cm3_s=caps["electron"],
         hole_capture_cm3_s=caps["hole"],
@@ -625,6 +788,47 @@ def _check_channels(src: str, material: Material, light: Light, traps: tuple[Tra
                             "counts would grow without bound")
 
 
+def check_counts(scenario: Scenario) -> None:
+    """Refuse derived counts beyond the engine's exact range (:data:`COUNT_MAX`).
+
+    Each count is density x volume (or areal density x surface area); their sum bounds every
+    species the engine and the exact solver track (free carriers, occupied traps).  Called
+    by ``check``, ``run``, ``exact``, ``sweep`` and :func:`grmc.simulate.run` (the continuum
+    alone may still be asked about a larger volume from Python).
+
+    Raises
+    ------
+    ScenarioError  Naming the key of the largest contribution.
+    """
+    src, material, volume = scenario.source, scenario.material, scenario.volume
+    traps, start = scenario.traps, scenario.start
+    vol = volume.volume_cm3
+    if vol < VOLUME_MIN:
+        raise ScenarioError(src, "volume", "size_nm", f"the box is {vol:.3g} cm^3, smaller "
+                            f"than {VOLUME_MIN:g} cm^3 (less than one atom)")
+    parts = [
+        ("material", "intrinsic_density_cm3", material.intrinsic_density_cm3 * vol),
+        ("material", "donors_cm3", material.donors_cm3 * vol),
+        ("material", "acceptors_cm3", material.acceptors_cm3 * vol),
+        ("start", "excess_pairs", 2.0 * start.excess_pairs),  # an electron and a hole each
+    ]
+    for trap in traps:
+        section = f"traps.{trap.label}"
+        if trap.count is not None:
+            parts.append((section, "count", float(trap.count)))
+        elif trap.density_cm3 is not None:
+            parts.append((section, "density_cm3", trap.density_cm3 * vol))
+        else:
+            parts.append((section, "areal_density_cm2",
+                          trap.areal_density_cm2 * (volume.surface_area_cm2 or 0.0)))
+    total = sum(p[2] for p in parts)
+    if total > COUNT_MAX:
+        section, key, biggest = max(parts, key=lambda p: p[2])
+        raise ScenarioError(src, section, key, f"gives {biggest:.3g} particles in the volume "
+                            f"(all counts together {total:.3g}), beyond the {COUNT_MAX:.3g} "
+                            "the event engine counts exactly; use a smaller volume")
+
+
 def parse_scenario(data: dict[str, Any], *, source: str = "<string>", text: str = "") -> Scenario:
     """Validate an already-parsed TOML document.
 
@@ -660,13 +864,16 @@ def parse_scenario(data: dict[str, Any], *, source: str = "<string>", text: str 
         raise ScenarioError(src, "material", "", "missing section")
     if "volume" not in data:
         raise ScenarioError(src, "volume", "", "missing section")
-    material = Material(**_read_table(src, "material", data["material"], _MATERIAL))
+    readout_vals = None
+    if "readout" in data:
+        readout_vals = _read_table(src, "readout", data["readout"], _READOUT)
+    material = _parse_material(src, data["material"], readout_vals)
     volume = _parse_volume(src, data["volume"])
 
     traps_raw = data.get("traps", [])
     if not isinstance(traps_raw, list):
         raise ScenarioError(src, "traps", "", "expected an array of tables: [[traps]]")
-    traps = tuple(_parse_trap(src, i, t, volume) for i, t in enumerate(traps_raw))
+    traps = tuple(_parse_trap(src, i, t, volume, material) for i, t in enumerate(traps_raw))
     seen: set[str] = set()
     for trap in traps:
         if trap.label in seen:
@@ -677,13 +884,9 @@ def parse_scenario(data: dict[str, Any], *, source: str = "<string>", text: str 
     _check_modulation(src, light, data.get("light", {}))
     start = Start(**_read_table(src, "start", data.get("start", {}), _START))
     run = RunSettings(**_read_table(src, "run", data.get("run", {}), _RUN))
-    band = run.flicker_band_Hz
-    if band is not None and (len(band) != 2 or not band[1] > band[0]):
-        raise ScenarioError(src, "run", "flicker_band_Hz",
-                            f"expected two increasing frequencies [f1, f2], got {list(band)}")
     readout = None
-    if "readout" in data:
-        readout = Readout(**_read_table(src, "readout", data["readout"], _READOUT))
+    if readout_vals is not None:
+        readout = _parse_readout(src, readout_vals, material)
     reservoir = None
     if "reservoir" in data:
         reservoir = Reservoir(**_read_table(src, "reservoir", data["reservoir"], _RESERVOIR))
@@ -783,10 +986,10 @@ def set_key(data: dict[str, Any], dotted: str, value: Any, *, source: str = "<sw
             raise ScenarioError(source, f"traps.{label}", key, "unknown key" + _hint(key, _TRAP))
         for trap in data.get("traps", []):
             if trap.get("label") == label:
-                amount = ("count", "density_cm3", "areal_density_cm2")
-                if key in amount:  # the exactly-one-of rule: the swept form replaces the others
-                    for other in amount:
-                        trap.pop(other, None)
+                for group in (("count", "density_cm3", "areal_density_cm2"), _ENERGY_KEYS):
+                    if key in group:  # exactly one of: the swept form replaces the others
+                        for other in group:
+                            trap.pop(other, None)
                 trap[key] = value
                 return
         raise ScenarioError(source, f"traps.{label}", "label", "no trap level with this label")

@@ -12,15 +12,16 @@ import math
 import numpy as np
 
 from . import continuum, spread
+from .cost import WARN_EVENTS, cost_warnings, estimate
 from .model import build_model, nominal_counts, trap_means
-from .scenario import Scenario
+from .scenario import Scenario, check_counts
 
 __all__ = ["summarize", "format_summary", "FEW_CARRIERS", "TOO_MANY_EVENTS"]
 
 #: Below this mean count a continuum answer is not to be trusted (common practice).
 FEW_CARRIERS = 10.0
 #: Above this many events a run is too long to be practical on one machine.
-TOO_MANY_EVENTS = 1.0e10
+TOO_MANY_EVENTS = WARN_EVENTS
 #: Rounding a density to a count may move it by this fraction before we warn.
 ROUNDING_TOLERANCE = 0.05
 
@@ -35,6 +36,7 @@ def summarize(scenario: Scenario) -> dict:
     ``relaxation_times_s``, ``event_rate_per_trajectory_s`` [1/s], ``expected_events``,
     ``warnings`` (list of str).
     """
+    check_counts(scenario)
     model = build_model(scenario)
     counts = nominal_counts(scenario)
     warnings: list[str] = []
@@ -54,6 +56,8 @@ def summarize(scenario: Scenario) -> dict:
         if trap.count is None:
             rounding(f"trap level '{trap.label}'", mean, got)
 
+    if mat.record is not None:
+        warnings.extend(f"[material] {w}" for w in mat.record.warnings)
     ss_model = continuum.steady_state(model)
     lna = continuum.lna(model)
     x0_model = model.nearest_neutral_state(ss_model)
@@ -72,11 +76,7 @@ def summarize(scenario: Scenario) -> dict:
                 f"{name}: continuum mean count {mean:.3g} is below {FEW_CARRIERS:g}; the "
                 "continuum and linear-noise answers are not to be trusted here"
             )
-    if events > TOO_MANY_EVENTS:
-        warnings.append(
-            f"the run needs about {events:.2g} events (more than {TOO_MANY_EVENTS:.0e}); "
-            "shorten duration_s or use fewer trajectories"
-        )
+    warnings.extend(cost_warnings(estimate(scenario, model, rate)))
     times = [float(t) for t in lna.relaxation_times]
     if times and run.duration_s < 20.0 * max(times):
         warnings.append(
@@ -93,6 +93,9 @@ def summarize(scenario: Scenario) -> dict:
         "title": scenario.title,
         "volume_cm3": vol,
         "surface_area_cm2": scenario.volume.surface_area_cm2,
+        "material_name": _material_name(scenario),
+        "material": _material(scenario),
+        "trap_energy_eV": {t.label: t.energy_eV for t in scenario.traps},
         "species": list(model.output_species),
         "counts": {
             "donors": counts.donors,
@@ -119,6 +122,30 @@ def summarize(scenario: Scenario) -> dict:
     }
 
 
+def _material_name(scenario: Scenario) -> str | None:
+    """``"HgCdTe (x = 0.3) at 77 K"``, None without a library material."""
+    mat = scenario.material
+    if mat.name is None:
+        return None
+    comp = "" if mat.composition_x is None else f" (x = {mat.composition_x:g})"
+    return f"{mat.name}{comp} at {mat.temperature_K:g} K"
+
+
+def _material(scenario: Scenario) -> dict:
+    """Each resolved material parameter: ``{key: {"value", "units", "from"}}``.
+
+    ``from`` is ``"scenario"`` for a value the scenario gave, else the law and its published
+    source (:mod:`grmc.materials`); the mobilities are those the ``[readout]`` uses.
+    """
+    mat = scenario.material
+    out = {} if mat.record is None else mat.record.as_json()
+    if scenario.readout is not None:  # what the readout finally uses (its keys win)
+        for key in ("electron_mobility_cm2_Vs", "hole_mobility_cm2_Vs"):
+            if key in out:
+                out[key]["value"] = getattr(scenario.readout, key)
+    return out
+
+
 def _current(model) -> float | None:
     """Continuum mean readout current [A], None without a [readout]."""
     if model.scenario.readout is None:
@@ -129,9 +156,22 @@ def _current(model) -> float | None:
 
 
 def _eng(x: float) -> str:
+    if math.isnan(x):
+        return "-"
     if x == 0 or not math.isfinite(x):
         return f"{x:g}"
     return f"{x:.4g}"
+
+
+def _material_lines(material: dict, name: str | None) -> list[str]:
+    """One line per resolved material value with its units and source."""
+    if not material:
+        return []
+    lines = ["", f"  material {name or '(values from the scenario)'}",
+             "  parameter                           value  units         from"]
+    for key, v in material.items():
+        lines.append(f"  {key:<31}{_eng(v['value']):>11}  {v['units']:<13} {v['from']}")
+    return lines
 
 
 def format_summary(info: dict) -> str:
@@ -142,8 +182,11 @@ def format_summary(info: dict) -> str:
     lines.append(f"  acceptors         {c['acceptors']}")
     for k, v in c.items():
         if k.startswith("T_"):
-            lines.append(f"  traps {k[2:]:<11} {v}")
+            energy = info.get("trap_energy_eV", {}).get(k[2:])
+            where = "" if energy is None else f"  (E_t - E_i = {energy:+.4g} eV)"
+            lines.append(f"  traps {k[2:]:<11} {v}{where}")
     lines.append(f"  conserved charge  {info['conserved_charge']}  (N_e - N_h + sum M_k)")
+    lines.extend(_material_lines(info.get("material") or {}, info.get("material_name")))
     res = info.get("reservoir")
     if res:
         lines.append(f"  reservoir         {res['carrier']} at {_eng(res['density_cm3'])} cm^-3, "
@@ -155,9 +198,9 @@ def format_summary(info: dict) -> str:
     for s in info["species"]:
         m = info["steady_continuum"][s]
         v = info["var_lna"][s]
-        fano = v / m if m > 0 else float("nan")
+        fano = f"{v / m:.3f}" if m > 0 and math.isfinite(v / m) else "-"
         lines.append(f"  {s:<22}{_eng(m):>16}{_eng(info['steady_density_cm3'][s]):>18}"
-                     f"{_eng(v):>14}{fano:>8.3f}{info['start_state'][s]:>10}")
+                     f"{_eng(v):>14}{fano:>8}{info['start_state'][s]:>10}")
     lines.append("")
     if info.get("flicker_band_Hz"):
         lo, hi = info["flicker_band_Hz"]

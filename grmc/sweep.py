@@ -10,6 +10,14 @@ address); the client gathers results as they complete, saves every finished poin
 Point ``i`` is seeded from ``(seed, i)`` only, so results do not depend on where or in which
 order points ran.
 
+Where the scenario has a ``[readout]``, each point also holds the readout current's noise at
+the chosen frequencies (``--frequency``, default :data:`DEFAULT_NOISE_FREQUENCIES`): exact
+or Monte Carlo (``current_psd``), linear noise (``current_psd_lna``) and the part of it the
+light's own shot noise drives (``current_psd_photon``, :func:`grmc.readout.photon_current_psd`).
+Each point records the intrinsic density and, with a library material, the band gap it used:
+a swept ``material.temperature_K`` re-resolves every library value at the point's
+temperature, while the keys the scenario gives keep their values.
+
 For each species the sweep file holds the relative deviation of the exact/Monte Carlo mean,
 variance and relaxation time from the continuum and linear-noise answers, with uncertainties:
 
@@ -22,12 +30,16 @@ Lorentzian this is its time constant; van Vliet, Proc. IRE 46, 1004, 1958 - from
 
 from __future__ import annotations
 
+import contextlib
 import dataclasses
 import hashlib
 import itertools
 import json
+import logging
 import math
+import signal
 import tomllib
+from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -35,15 +47,20 @@ from typing import Any
 import numpy as np
 
 from .atomic import write_text_atomic
-from .scenario import SCHEMA, Scenario, ScenarioError, parse_scenario, set_key
+from .result import DEVIATION_THRESHOLD, crossing_count
+from .scenario import (SCHEMA, Scenario, ScenarioError, check_counts, parse_scenario,
+                       set_key)
 
-__all__ = ["Vary", "parse_vary", "sweep_points", "point_scenario", "evaluate_point",
-           "run_sweep", "assemble", "crossing_count", "EXACT_STATE_LIMIT"]
+__all__ = ["Vary", "parse_vary", "round_integers", "parts_dir", "sweep_points", "point_scenario",
+           "evaluate_point", "run_sweep", "SchedulerUnreachable", "assemble", "crossing_count",
+           "EXACT_STATE_LIMIT"]
 
+#: Seconds to wait for a Dask scheduler given by ``--scheduler`` before giving up.
+CONNECT_TIMEOUT_S = 2.0
 #: Largest exact state space a sweep point uses before it falls back to Monte Carlo.
 EXACT_STATE_LIMIT = 200_000
-#: A relative deviation of this size marks where the continuum answer fails.
-DEVIATION_THRESHOLD = 0.10
+#: Frequencies of the readout noise recorded per point unless ``--frequency`` is given [Hz].
+DEFAULT_NOISE_FREQUENCIES = (1.0e3,)
 
 
 @dataclass(frozen=True)
@@ -66,6 +83,7 @@ def parse_vary(text: str) -> Vary:
         raise ValueError(f"{text!r}: expected KEY=START:STOP:N[:log]")
     key, spec = text.split("=", 1)
     key = key.strip()
+    _check_key_form(text, key)
     parts = spec.split(":")
     if len(parts) not in (3, 4) or (len(parts) == 4 and parts[3] not in ("log", "lin")):
         raise ValueError(f"{text!r}: expected KEY=START:STOP:N[:log]")
@@ -86,6 +104,48 @@ def parse_vary(text: str) -> Vary:
     return Vary(key=key, values=tuple(float(v) for v in values), log=log)
 
 
+def _check_key_form(text: str, key: str) -> None:
+    """Refuse a key without its section, naming the section that holds it."""
+    parts = key.split(".")
+    if len(parts) == 2 or (len(parts) == 3 and parts[0] == "traps"):
+        return
+    if len(parts) == 1:
+        home = [sec for sec, table in SCHEMA.items() if key in table]
+        hint = (f"; write {home[0]}.{key}" if home and home[0] != "traps"
+                else f"; write traps.<label>.{key}" if home else "")
+        raise ValueError(f"{text!r}: the key {key!r} needs its section, as section.key "
+                         f"or traps.<label>.key{hint}")
+    raise ValueError(f"{text!r}: expected section.key or traps.<label>.key before '='")
+
+
+def _spec_of(key: str):
+    parts = key.split(".")
+    section, name = ("traps", parts[2]) if parts[0] == "traps" and len(parts) == 3 else parts
+    return SCHEMA.get(section, {}).get(name)
+
+
+def round_integers(vary: Vary) -> tuple[Vary, str | None]:
+    """Round the values swept into an integer key (counts, samples, seeds).
+
+    Returns
+    -------
+    (Vary, str or None)  The sweep with the values that will run, and a warning listing the
+        values that were rounded (None when none was).
+    """
+    spec = _spec_of(vary.key)
+    if spec is None or spec.kind != "int":
+        return vary, None
+    rounded = tuple(float(math.floor(v + 0.5)) for v in vary.values)
+    changed = [(v, r) for v, r in zip(vary.values, rounded) if v != r]
+    if not changed:
+        return vary, None
+    shown = ", ".join(f"{v:g} -> {r:g}" for v, r in changed[:4]) + (
+        ", ..." if len(changed) > 4 else "")
+    note = (f"--vary {vary.key}: an integer key; rounded {shown} (the file records the "
+            "values that ran)")
+    return dataclasses.replace(vary, values=rounded), note
+
+
 def sweep_points(varies: list[Vary]) -> list[dict[str, float]]:
     """All combinations, the first ``--vary`` varying slowest."""
     return [dict(zip([v.key for v in varies], combo))
@@ -93,9 +153,7 @@ def sweep_points(varies: list[Vary]) -> list[dict[str, float]]:
 
 
 def _typed(key: str, value: float) -> Any:
-    parts = key.split(".")
-    section, name = ("traps", parts[2]) if parts[0] == "traps" and len(parts) == 3 else parts
-    spec = SCHEMA.get(section, {}).get(name)
+    spec = _spec_of(key)
     if spec is None:
         return value
     if spec.kind == "int":
@@ -113,6 +171,7 @@ def point_scenario(scenario: Scenario, assignment: dict[str, float]) -> Scenario
     for key, value in assignment.items():
         set_key(data, key, _typed(key, value), source=scenario.source)
     scen = parse_scenario(data, source=src, text=scenario.text)
+    check_counts(scen)
     return scen
 
 
@@ -121,48 +180,64 @@ def _point_seed(seed: int, index: int) -> int:
     return int(ss.generate_state(1, np.uint32)[0])
 
 
-def _lna_tau(model) -> tuple[np.ndarray, np.ndarray, float]:
+def _lna_tau(model) -> tuple[np.ndarray, np.ndarray, np.ndarray, float]:
+    """Continuum steady state, linear-noise variance and spectral time constant S(0)/(4 var)
+    (at f0, four decades below the slowest corner) from :func:`grmc.theory.theory`."""
     from . import continuum
+    from .theory import theory
 
-    lna = continuum.lna(model)
-    var = np.diag(model.project_matrix(lna.covariance)).copy()
-    times = np.asarray(lna.relaxation_times, dtype=float)
+    th = theory(model)
+    var = th.variables["var_lna"][1]
+    times = th.variables["relaxation_time_lna"][1]
     f0 = 1e-4 / (2 * math.pi * times.max()) if times.size else 1.0
     smat = model.project_matrix(continuum.lna_psd(model, np.array([f0])))
     s0 = np.real(np.einsum("iif->if", smat))[:, 0]
     with np.errstate(divide="ignore", invalid="ignore"):
         tau = np.where(var > 0, s0 / (4 * var), np.nan)
-    return var, tau, f0
+    return th.steady, var, tau, f0
 
 
-def evaluate_point(scenario: Scenario, index: int, *, exact_limit: int = EXACT_STATE_LIMIT
-                   ) -> dict:
+def evaluate_point(scenario: Scenario, index: int, *, exact_limit: int = EXACT_STATE_LIMIT,
+                   noise_frequencies: tuple[float, ...] = DEFAULT_NOISE_FREQUENCIES) -> dict:
     """Solve one sweep point: exact where small, Monte Carlo otherwise.
 
     Returns
     -------
     dict of JSON-ready values: ``index``, ``method``, ``species`` and per species lists
     ``mean``, ``mean_err``, ``var``, ``var_err``, ``tau``, ``tau_err``, ``continuum``,
-    ``var_lna``, ``tau_lna``.  With a ``[population]`` the point is always a Monte Carlo
-    population and the dict also holds its per-frequency ``telegraph_fraction`` (with
-    ``_stderr``), ``noise_median`` and ``relative_noise_median`` (:func:`_population_of`).
+    ``var_lna``, ``tau_lna``; ``intrinsic_density`` [cm^-3] and ``band_gap`` [eV] (NaN
+    without a library material); with a ``[readout]`` the lists ``current_psd``,
+    ``current_psd_lna`` and ``current_psd_photon`` at ``noise_frequencies`` [A^2/Hz].  With
+    a ``[population]`` the point is always a Monte Carlo population and the dict also holds
+    its per-frequency ``telegraph_fraction`` (with ``_stderr``), ``noise_median`` and
+    ``relative_noise_median`` (:func:`_population_of`).  With a spread trap level the
+    species are the output species (the level's total beside its sub-levels).
     """
-    from . import continuum, exact
+    from . import exact
     from .model import build_model
 
     model = build_model(scenario)
-    ss = continuum.steady_state(model)
-    var_lna, tau_lna, f0 = _lna_tau(model)
+    ss, var_lna, tau_lna, f0 = _lna_tau(model)
+    noise_f = np.asarray(noise_frequencies, dtype=float)
     out: dict[str, Any] = {"index": index, "species": list(model.output_species)}
+    current = None
     res = None
     if scenario.population is None:  # a population needs its pixels simulated
         try:
-            res = exact.solve(model, freqs=np.array([f0]), max_states=exact_limit)
+            res = exact.solve(model, freqs=np.concatenate([[f0], noise_f]),
+                              max_states=exact_limit)
         except exact.StateSpaceTooLarge:
             res = None
     if res is not None:
-        s0 = np.real(np.einsum("iif->if", model.project_matrix(res.psd_matrix)))[:, 0]
-        var = np.diag(model.project_matrix(res.covariance))
+        if scenario.readout is not None:
+            from .readout import exact_current
+
+            current = exact_current(model, res).psd[1:]
+        if model.has_sublevels:  # the output species: a spread level's total beside its parts
+            s0 = np.real(np.einsum("iif->if", model.project_matrix(res.psd_matrix[:, :, :1])))
+            s0, var = s0[:, 0], np.diag(model.project_matrix(res.covariance))
+        else:
+            s0, var = res.psd[:, 0], res.var
         with np.errstate(divide="ignore", invalid="ignore"):
             tau = np.where(var > 0, s0 / (4 * var), np.nan)
         zeros = np.zeros(len(model.output_species))
@@ -170,8 +245,10 @@ def evaluate_point(scenario: Scenario, index: int, *, exact_limit: int = EXACT_S
                    mean_err=zeros, var=var, var_err=zeros, tau=tau, tau_err=zeros,
                    probability_outside=float(res.mass_outside))
     else:
+        from .cost import refuse_absurd, run_cost
         from .simulate import run
 
+        refuse_absurd(scenario, run_cost(scenario))  # a point that could never finish
         seed = _point_seed(scenario.run.seed, index)
         ds = run(scenario, seed=seed, workers=1, progress=False)
         var = ds["stationary_var"].values
@@ -188,7 +265,18 @@ def evaluate_point(scenario: Scenario, index: int, *, exact_limit: int = EXACT_S
                    mean=ds["stationary_mean"].values, mean_err=ds["stationary_mean_stderr"].values,
                    var=var, var_err=ds["stationary_var_stderr"].values, tau=tau, tau_err=tau_err)
         out.update(_population_of(ds))
+        if "current_psd" in ds:
+            current = _log_interp(noise_f, ds["frequency"].values, ds["current_psd"].values)
     out.update(continuum=model.project(ss), var_lna=var_lna, tau_lna=tau_lna)
+    mat = scenario.material
+    gap = None if mat.record is None else mat.record.value("band_gap_eV")
+    out.update(intrinsic_density=mat.intrinsic_density_cm3,
+               band_gap=float("nan") if gap is None else gap)
+    if scenario.readout is not None:
+        from .readout import lna_current, photon_current_psd
+
+        out.update(current_psd=current, current_psd_lna=lna_current(model, noise_f).psd,
+                   current_psd_photon=photon_current_psd(model, noise_f))
     return {k: (np.asarray(v, dtype=float).tolist() if isinstance(v, np.ndarray) else v)
             for k, v in out.items()}
 
@@ -212,15 +300,27 @@ def _population_of(ds) -> dict:
             "relative_noise_median": np.median(rel, axis=0)}
 
 
-def _evaluate_task(scenario: Scenario, assignment: dict, index: int) -> dict:
+def _log_interp(f: np.ndarray, freqs: np.ndarray, psd: np.ndarray) -> np.ndarray:
+    """A positive spectrum at ``f``, interpolated in log-log; NaN outside its frequencies."""
+    ok = (freqs > 0) & (psd > 0)
+    lf, lp = np.log(freqs[ok]), np.log(psd[ok])
+    out = np.exp(np.interp(np.log(f), lf, lp))
+    return np.where((f >= freqs[ok].min()) & (f <= freqs[ok].max()), out, np.nan)
+
+
+def _evaluate_task(scenario: Scenario, assignment: dict, index: int,
+                   noise_frequencies: tuple[float, ...] = DEFAULT_NOISE_FREQUENCIES) -> dict:
     """One Dask task: build the point's scenario and solve it."""
-    res = evaluate_point(point_scenario(scenario, assignment), index)
+    res = evaluate_point(point_scenario(scenario, assignment), index,
+                         noise_frequencies=noise_frequencies)
     res["assignment"] = assignment
     return res
 
 
-def _signature(scenario: Scenario, varies: list[Vary]) -> str:
+def _signature(scenario: Scenario, varies: list[Vary], noise_f: tuple[float, ...]) -> str:
     text = scenario.text + "\n" + json.dumps([dataclasses.asdict(v) for v in varies])
+    if noise_f != DEFAULT_NOISE_FREQUENCIES:  # (the default keeps older signatures)
+        text += "\n" + json.dumps(noise_f)
     return hashlib.sha256(text.encode()).hexdigest()[:16]
 
 
@@ -228,46 +328,61 @@ def _atomic_json(path: Path, obj) -> None:
     write_text_atomic(path, json.dumps(obj))
 
 
-def _parts_dir(out: Path) -> Path:
+def parts_dir(out: Path) -> Path:
+    """The folder beside a sweep file that keeps its finished points until it is written."""
     return out.with_name(out.name + ".parts")
 
 
-def run_sweep(scenario: Scenario, varies: list[Vary], out: str | Path, *,
-              scheduler: str | None = None, resume: bool = False, workers: int | None = None,
-              command: str | None = None, max_points: int | None = None) -> Path:
-    """Run every sweep point on Dask and write the stacked file.
+class SchedulerUnreachable(ConnectionError):
+    """No Dask scheduler answers at the address given (an environment failure)."""
 
-    Parameters
-    ----------
-    scenario : Scenario  The base scenario
-    varies : list of Vary  The swept keys
-    out : path  The sweep file
-    scheduler : str, optional  Address of a running Dask scheduler; default a LocalCluster
-        (one single-threaded worker per core, no dashboard)
-    resume : bool  Keep the points an earlier, interrupted run of the same sweep finished
-    workers : int, optional  LocalCluster workers (default: all cores)
-    command : str, optional  Command line recorded in ``history``
-    max_points : int, optional  Stop after this many new points (leaves the sweep
-        unfinished, as an interruption would; used to test ``resume``)
 
-    Returns
-    -------
-    Path or None  The sweep file; None while points are missing (``max_points``).
+@contextlib.contextmanager
+def _sigint_ignored():
+    """Start worker processes with Ctrl-C ignored: an interruption reaches the whole process
+    group, and only this process should answer it (the workers are closed from here).  A
+    process started with SIGINT ignored keeps it ignored (POSIX exec semantics)."""
+    try:
+        previous = signal.signal(signal.SIGINT, signal.SIG_IGN)
+    except ValueError:  # not the main thread
+        yield
+        return
+    try:
+        yield
+    finally:
+        signal.signal(signal.SIGINT, previous)
 
-    Raises
-    ------
-    ScenarioError  A swept key or value the scenario format rejects.
-    """
-    from .dataset import save
+
+def _connect(scheduler: str | None, workers: int | None, n_tasks: int):
+    """A Dask client (and the LocalCluster it owns, or None)."""
+    from dask.distributed import Client, LocalCluster
+
     from .engine.ensemble import default_workers
 
-    out = Path(out)
-    points = sweep_points(varies)
-    # validate every point before anything runs (bad keys and values exit 2, nothing written)
-    for assignment in points:
-        point_scenario(scenario, assignment)
-    parts = _parts_dir(out)
-    sig = _signature(scenario, varies)
+    if scheduler:
+        try:
+            return Client(scheduler, timeout=CONNECT_TIMEOUT_S), None
+        except (OSError, ValueError, TypeError) as exc:
+            raise SchedulerUnreachable(
+                f"--scheduler {scheduler}: no Dask scheduler answered within "
+                f"{CONNECT_TIMEOUT_S:g} s ({exc})") from None
+    n = workers or default_workers()
+    # the cluster's own log lines (a cancelled task, a worker killed on closing, a point's
+    # refusal) would follow the one line grmc prints: every failure of a point comes back
+    # to this process as its exception, so the cluster's logs are kept quiet
+    logging.getLogger("distributed").setLevel(logging.CRITICAL)
+    with _sigint_ignored():
+        cluster = LocalCluster(n_workers=min(n, n_tasks), threads_per_worker=1,
+                               dashboard_address=None, processes=True,
+                               silence_logs=logging.CRITICAL,
+                               # the scheduler's small HTTP server on a free local port (its
+                               # default, 8787, may be taken by another cluster on the machine)
+                               scheduler_kwargs={"dashboard_address": "127.0.0.1:0"})
+    return Client(cluster), cluster
+
+
+def _open_parts(parts: Path, sig: str, n_points: int, resume: bool, out: Path) -> dict:
+    """The points an earlier run of the same sweep finished (creating the folder if new)."""
     manifest = parts / "manifest.json"
     done: dict[int, dict] = {}
     if parts.exists():
@@ -283,45 +398,101 @@ def run_sweep(scenario: Scenario, varies: list[Vary], out: str | Path, *,
             done[int(res["index"])] = res
     else:
         parts.mkdir(parents=True)
-        _atomic_json(manifest, {"signature": sig, "points": len(points)})
+        _atomic_json(manifest, {"signature": sig, "points": n_points})
+    return done
 
+
+def _remove_parts(parts: Path) -> None:
+    for f in parts.iterdir():  # including temporary files an interruption left behind
+        f.unlink()
+    parts.rmdir()
+
+
+def run_sweep(scenario: Scenario, varies: list[Vary], out: str | Path, *,
+              scheduler: str | None = None, resume: bool = False, workers: int | None = None,
+              command: str | None = None, max_points: int | None = None,
+              noise_frequencies: tuple[float, ...] | None = None,
+              on_point: Callable[[dict], None] | None = None) -> Path | None:
+    """Run every sweep point on Dask and write the stacked file.
+
+    Parameters
+    ----------
+    scenario : Scenario  The base scenario
+    varies : list of Vary  The swept keys
+    out : path  The sweep file
+    scheduler : str, optional  Address of a running Dask scheduler; default a LocalCluster
+        (one single-threaded worker per core, no dashboard)
+    resume : bool  Keep the points an earlier, interrupted run of the same sweep finished
+    workers : int, optional  LocalCluster workers (default: all cores)
+    command : str, optional  Command line recorded in ``history``
+    max_points : int, optional  Stop after this many new points (leaves the sweep
+        unfinished, as an interruption would; used to test ``resume``)
+    noise_frequencies : tuple of float, optional  Frequencies of the readout noise recorded
+        per point (default :data:`DEFAULT_NOISE_FREQUENCIES`) [Hz]
+    on_point : callable, optional  Called with each point's result as it finishes
+
+    Returns
+    -------
+    Path or None  The sweep file; None while points are missing (``max_points``).
+
+    Raises
+    ------
+    ScenarioError  A swept key or value the scenario format rejects.
+    SchedulerUnreachable  No scheduler at ``scheduler`` (nothing is left behind).
+    """
+    from .dataset import save
+
+    out = Path(out)
+    noise_f = tuple(sorted(noise_frequencies or DEFAULT_NOISE_FREQUENCIES))
+    points = sweep_points(varies)
+    # validate every point before anything runs (bad keys and values exit 2, nothing written)
+    for assignment in points:
+        point_scenario(scenario, assignment)
+    parts = parts_dir(out)
+    fresh = not parts.exists()
+    done = _open_parts(parts, _signature(scenario, varies, noise_f), len(points), resume, out)
     todo = [i for i in range(len(points)) if i not in done]
     if max_points is not None:
         todo = todo[:max_points]
     if todo:
-        from dask.distributed import Client, LocalCluster, as_completed
+        from dask.distributed import as_completed
 
-        cluster = None
-        if scheduler:
-            client = Client(scheduler)
-        else:
-            n = workers or default_workers()
-            cluster = LocalCluster(n_workers=min(n, len(todo)), threads_per_worker=1,
-                                   dashboard_address=None, processes=True)
-            client = Client(cluster)
         try:
-            futures = [client.submit(_evaluate_task, scenario, points[i], i, pure=False)
-                       for i in todo]
+            client, cluster = _connect(scheduler, workers, len(todo))
+        except SchedulerUnreachable:
+            if fresh:  # nothing was computed: leave nothing behind
+                _remove_parts(parts)
+            raise
+        try:
+            futures = [client.submit(_evaluate_task, scenario, points[i], i, noise_f,
+                                     pure=False) for i in todo]
             for fut in as_completed(futures):
-                res = fut.result()
+                try:
+                    res = fut.result()
+                except ScenarioError:  # a point refused: keep only what other points finished
+                    if fresh and not done:
+                        _remove_parts(parts)
+                    raise
                 _atomic_json(parts / f"point_{res['index']:05d}.json", res)
                 done[int(res["index"])] = res
+                if on_point is not None:
+                    on_point(res)
         finally:
             client.close()
             if cluster is not None:
                 cluster.close()
     if len(done) < len(points):
         return None
-    ds = assemble(scenario, varies, [done[i] for i in range(len(points))], command=command)
+    ds = assemble(scenario, varies, [done[i] for i in range(len(points))], command=command,
+                  noise_frequencies=noise_f)
     save(ds, out)
-    for f in parts.iterdir():  # including temporary files an interruption left behind
-        f.unlink()
-    parts.rmdir()
+    _remove_parts(parts)
     return out
 
 
 def assemble(scenario: Scenario, varies: list[Vary], results: list[dict], *,
-             command: str | None = None):
+             command: str | None = None,
+             noise_frequencies: tuple[float, ...] = DEFAULT_NOISE_FREQUENCIES):
     """Stack point results along ``sweep`` and add the relative deviations."""
     import xarray as xr
 
@@ -336,12 +507,11 @@ def assemble(scenario: Scenario, varies: list[Vary], results: list[dict], *,
     for name in ("mean", "mean_err", "var", "var_err", "tau", "tau_err", "continuum",
                  "var_lna", "tau_lna"):
         data[name] = stack(name)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        dev = {
-            "mean": (data["mean"] / data["continuum"] - 1, data["mean_err"] / data["continuum"]),
-            "var": (data["var"] / data["var_lna"] - 1, data["var_err"] / data["var_lna"]),
-            "tau": (data["tau"] / data["tau_lna"] - 1, data["tau_err"] / data["tau_lna"]),
-        }
+    dev = {
+        "mean": _relative(data["mean"], data["mean_err"], data["continuum"]),
+        "var": _relative(data["var"], data["var_err"], data["var_lna"]),
+        "tau": _relative(data["tau"], data["tau_err"], data["tau_lna"]),
+    }
     sw = ("sweep", "species")
     variables = {
         "stationary_mean": (sw, data["mean"]),
@@ -361,6 +531,10 @@ def assemble(scenario: Scenario, varies: list[Vary], results: list[dict], *,
         "deviation_tau_stderr": (sw, dev["tau"][1]),
         "method": (("sweep",), np.array([r["method"] for r in results], dtype=object)),
     }
+    variables["intrinsic_density"] = (("sweep",), stack("intrinsic_density"))
+    gaps = stack("band_gap")
+    if np.isfinite(gaps).any():  # a library material
+        variables["band_gap"] = (("sweep",), gaps)
     coords = {
         "sweep": ("sweep", np.arange(len(results), dtype=np.int64)),
         "species": ("species", np.array(species, dtype=object)),
@@ -376,6 +550,12 @@ def assemble(scenario: Scenario, varies: list[Vary], results: list[dict], *,
         })
         coords["noise_frequency"] = ("noise_frequency",
                                      np.asarray(results[0]["noise_frequency"], dtype=float))
+    if "current_psd_lna" in results[0]:
+        coords["frequency"] = ("frequency", np.asarray(noise_frequencies, dtype=float))
+        for name in ("current_psd", "current_psd_lna", "current_psd_photon"):
+            values = [np.full(len(noise_frequencies), np.nan) if r[name] is None else r[name]
+                      for r in results]
+            variables[name] = (("sweep", "frequency"), np.array(values, dtype=float))
     for v in varies:
         coords[v.key] = ("sweep", np.array([r["assignment"][v.key] for r in results]))
     ds = xr.Dataset(variables, coords=coords)
@@ -388,6 +568,17 @@ def assemble(scenario: Scenario, varies: list[Vary], results: list[dict], *,
     for name in ("method",):
         ds[name].attrs.update({"long_name": "exact or monte carlo", "units": "1"})
     return ds
+
+
+def _relative(value: np.ndarray, err: np.ndarray, reference: np.ndarray
+              ) -> tuple[np.ndarray, np.ndarray]:
+    """value / reference - 1 and its standard error; 0 where both are exactly 0 (a trap level
+    with no traps: nothing fluctuates and every answer agrees)."""
+    both_zero = (value == 0) & (reference == 0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        dev = np.where(both_zero, 0.0, value / reference - 1)
+        dev_err = np.where(both_zero, err, err / reference)
+    return dev, dev_err
 
 
 def _key_units(key: str) -> str:
@@ -404,21 +595,3 @@ def _key_units(key: str) -> str:
         if name.endswith(suffix):
             return units
     return "1"
-
-
-def crossing_count(mean_count: np.ndarray, deviation: np.ndarray,
-                   threshold: float = DEVIATION_THRESHOLD) -> float | None:
-    """Mean count at which |deviation| falls through ``threshold`` (log-interpolated).
-
-    Returns the largest count where the deviation, coming from large counts, first exceeds the
-    threshold; None when it never crosses within the sweep.
-    """
-    order = np.argsort(mean_count)[::-1]
-    x = np.asarray(mean_count, dtype=float)[order]
-    y = np.abs(np.asarray(deviation, dtype=float)[order])
-    for k in range(1, len(x)):
-        if y[k - 1] < threshold <= y[k] and x[k] > 0 and x[k - 1] > 0:
-            ly0, ly1 = math.log(max(y[k - 1], 1e-300)), math.log(y[k])
-            w = (math.log(threshold) - ly0) / (ly1 - ly0) if ly1 != ly0 else 0.0
-            return float(math.exp(math.log(x[k - 1]) + w * (math.log(x[k]) - math.log(x[k - 1]))))
-    return None
