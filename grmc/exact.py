@@ -167,6 +167,9 @@ _REUSE_MIN = 2000
 #: Largest ratio of two frequencies for which a kept LU preconditions the other [1].
 _REUSE_RATIO = 4.0
 
+#: Most factor entries, summed over the factorisations the spectra need [entries].
+_MAX_LU_WORK = 3.0e7
+
 #: Trap levels of more than this many traps keep a window of occupancies [count].
 _WINDOW_MIN = 64
 
@@ -429,8 +432,10 @@ def generator(
 # --------------------------------------------------------------------------------------------
 
 
-def _pinned_solve(Q: sp.csr_matrix, k: int) -> np.ndarray:
-    """Solve pi^T Q = 0 with pi_k = 1 (drop equation k, move column k to the right side)."""
+def _pinned_solve(Q: sp.csr_matrix, k: int, stats: dict | None = None) -> np.ndarray:
+    """Solve pi^T Q = 0 with pi_k = 1 (drop equation k, move column k to the right side).
+
+    ``stats["fill"]`` receives the entries of the LU factors."""
     n = Q.shape[0]
     if n == 1:
         return np.ones(1)
@@ -440,6 +445,8 @@ def _pinned_solve(Q: sp.csr_matrix, k: int) -> np.ndarray:
     A = QT[keep][:, keep].tocsc()
     b = -QT[keep][:, [k]].toarray().ravel()
     lu = spla.splu(A, permc_spec=_ORDERING)
+    if stats is not None:
+        stats["fill"] = int(lu.L.nnz + lu.U.nnz)
     x = lu.solve(b)
     # One step of iterative refinement.
     r = b - A @ x
@@ -457,7 +464,8 @@ def _relative_residual(Q: sp.csr_matrix, pi: np.ndarray) -> float:
     return float(np.abs(Q.T @ pi).sum() / flux)
 
 
-def stationary_law(Q: sp.csr_matrix, *, pin: int | None = None) -> tuple[np.ndarray, float]:
+def stationary_law(Q: sp.csr_matrix, *, pin: int | None = None,
+                   stats: dict | None = None) -> tuple[np.ndarray, float]:
     """Stationary law of an irreducible conservative generator.
 
     Parameters
@@ -469,6 +477,8 @@ def stationary_law(Q: sp.csr_matrix, *, pin: int | None = None) -> tuple[np.ndar
         tries when a pin is so unlikely that the solve overflows): the states with the
         smallest and the largest exit rate, the middle, first and last state.  The solve is
         repeated pinned at the most probable state when the pin turns out unlikely.
+    stats : dict, optional
+        Receives ``"fill"``, the entries of the last LU factors [entries].
 
     Returns
     -------
@@ -499,7 +509,7 @@ def stationary_law(Q: sp.csr_matrix, *, pin: int | None = None) -> tuple[np.ndar
     exit_rate = -Q.diagonal()
     if n > 1 and np.all(exit_rate > 0):
         try:
-            flux, _ = _stationary_unscaled(sp.diags(1.0 / exit_rate) @ Q, pin)
+            flux, _ = _stationary_unscaled(sp.diags(1.0 / exit_rate) @ Q, pin, stats)
         except RuntimeError:
             flux = None
         if flux is not None:
@@ -510,10 +520,11 @@ def stationary_law(Q: sp.csr_matrix, *, pin: int | None = None) -> tuple[np.ndar
                 res = _relative_residual(Q, pi)
                 if res <= _RESIDUAL_TOL:
                     return pi, res
-    return _stationary_unscaled(Q, pin)
+    return _stationary_unscaled(Q, pin, stats)
 
 
-def _stationary_unscaled(Q: sp.csr_matrix, pin: int | None) -> tuple[np.ndarray, float]:
+def _stationary_unscaled(Q: sp.csr_matrix, pin: int | None,
+                         stats: dict | None = None) -> tuple[np.ndarray, float]:
     """:func:`stationary_law` on ``Q`` as given (pinned LU, then eigs)."""
     Q = sp.csr_matrix(Q)
     n = Q.shape[0]
@@ -525,12 +536,12 @@ def _stationary_unscaled(Q: sp.csr_matrix, pin: int | None) -> tuple[np.ndarray,
         try:
             with warnings.catch_warnings():
                 warnings.simplefilter("error", spla.MatrixRankWarning)
-                trial = _pinned_solve(Q, k)
+                trial = _pinned_solve(Q, k, stats)
                 if not np.all(np.isfinite(trial)):
                     continue  # pinned at a state so unlikely that the others overflow
                 best = int(np.argmax(trial))
                 if trial[best] > 1e3 * abs(trial[k]) or trial[k] <= 0:
-                    trial = _pinned_solve(Q, best)
+                    trial = _pinned_solve(Q, best, stats)
         except (RuntimeError, spla.MatrixRankWarning):
             continue
         if np.all(np.isfinite(trial)):
@@ -1149,6 +1160,7 @@ class _Stationary:
     best_state: np.ndarray
     j_tail: float = 0.0  # estimated probability beyond j = J
     edge_tails: np.ndarray | None = None  # (K, 2): beyond low_k and beyond high_k
+    fill: int = 0  # entries of the stationary LU factors
 
 
 def _stationary_at(model: Model, J: int, x0, best_state, low=None, high=None) -> _Stationary:
@@ -1166,8 +1178,9 @@ def _stationary_at(model: Model, J: int, x0, best_state, low=None, high=None) ->
         pos = int(np.searchsorted(sup, k))
         if k >= 0 and pos < sup.size and sup[pos] == k:
             pin = pos
+    stats: dict = {}
     try:
-        pi_s, residual = stationary_law(Qs, pin=pin)
+        pi_s, residual = stationary_law(Qs, pin=pin, stats=stats)
     except RuntimeError as exc:
         rates = np.abs(Qs.diagonal())
         raise ExactUnresolved(
@@ -1180,7 +1193,7 @@ def _stationary_at(model: Model, J: int, x0, best_state, low=None, high=None) ->
     edges = _window_tails(space, pi)
     return _Stationary(space, outflow, sup, Qs, pi_s, pi, p_j, float(residual),
                        j_tail + float(edges.sum()), space.states[sup[int(np.argmax(pi_s))]],
-                       j_tail, edges)
+                       j_tail, edges, int(stats.get("fill", 0)))
 
 
 def _window_tails(space: StateSpace, pi: np.ndarray) -> np.ndarray:
@@ -1454,6 +1467,35 @@ def _fit_transient(model: Model, st: _Stationary, tr: _Truncation, x0, times, to
         st = _fit_stationary(model, tr, x0, tol, max_states, False, st.best_state)
 
 
+def _refuse_heavy_spectra(st: _Stationary, freqs: np.ndarray | None) -> None:
+    """Refuse at once spectra whose factorisations would hold too many entries in all.
+
+    The resolvent's factors have about the stationary LU's fill (the same pattern, complex
+    entries); the frequencies need one factorisation each, or one per factor
+    ``_REUSE_RATIO`` of frequency in chains of ``_REUSE_MIN`` states or more.
+
+    Raises
+    ------
+    ExactUnresolved
+        When fill times factorisations exceeds ``_MAX_LU_WORK`` (several large trap levels
+        make the factors dense much faster than the states grow).
+    """
+    if freqs is None or freqs.size == 0 or st.fill == 0:
+        return
+    n = st.support.size
+    if n >= _REUSE_MIN:
+        span = math.log(float(freqs.max() / freqs.min()))
+        count = 1 + int(span / math.log(_REUSE_RATIO))
+    else:
+        count = freqs.size
+    if st.fill * count > _MAX_LU_WORK:
+        raise ExactUnresolved(
+            f"the spectra of {n:,} states need about {count} sparse factorisations of about "
+            f"{st.fill:,} entries each, more than {_MAX_LU_WORK:.3g} entries in all (several "
+            "large trap levels make the factors dense); use the Monte Carlo ensemble "
+            "(`grmc run`) or fewer frequencies")
+
+
 def _check_inputs(model: Model, freqs, times, x0, tol):
     if not (tol > 0):
         raise ValueError(f"tol must be > 0, got {tol}")
@@ -1579,6 +1621,7 @@ def solve(
     st = _fit_stationary(model, tr, x0, tol, max_states, fixed)
     if not fixed:
         st = _trim(model, st, tr, x0, tol, times)
+    _refuse_heavy_spectra(st, freqs)
     tra = _Transient(x0, None, None)
     if times is not None:
         st, tra = _fit_transient(model, st, tr, x0, times, tol, max_states, fixed)
