@@ -167,8 +167,8 @@ _REUSE_MIN = 2000
 #: Largest ratio of two frequencies for which a kept LU preconditions the other [1].
 _REUSE_RATIO = 4.0
 
-#: Most factor entries, summed over the factorisations the spectra need [entries].
-_MAX_LU_WORK = 3.0e7
+#: Most factor entries the spectra may touch, factorisations and solves together [entries].
+_MAX_LU_WORK = 3.0e9
 
 #: Trap levels of more than this many traps keep a window of occupancies [count].
 _WINDOW_MIN = 64
@@ -1471,14 +1471,16 @@ def _refuse_heavy_spectra(st: _Stationary, freqs: np.ndarray | None) -> None:
     """Refuse at once spectra whose factorisations would hold too many entries in all.
 
     The resolvent's factors have about the stationary LU's fill (the same pattern, complex
-    entries); the frequencies need one factorisation each, or one per factor
-    ``_REUSE_RATIO`` of frequency in chains of ``_REUSE_MIN`` states or more.
+    entries); a factorisation touches each entry about 20 times, a solve once.  The
+    frequencies need one factorisation each, or, in chains of ``_REUSE_MIN`` states or more,
+    one per factor ``_REUSE_RATIO`` of frequency plus about ten preconditioned solves per
+    observable at every frequency.
 
     Raises
     ------
     ExactUnresolved
-        When fill times factorisations exceeds ``_MAX_LU_WORK`` (several large trap levels
-        make the factors dense much faster than the states grow).
+        When the entries touched exceed ``_MAX_LU_WORK`` (several large trap levels make
+        the factors dense much faster than the states grow).
     """
     if freqs is None or freqs.size == 0 or st.fill == 0:
         return
@@ -1486,14 +1488,16 @@ def _refuse_heavy_spectra(st: _Stationary, freqs: np.ndarray | None) -> None:
     if n >= _REUSE_MIN:
         span = math.log(float(freqs.max() / freqs.min()))
         count = 1 + int(span / math.log(_REUSE_RATIO))
+        work = st.fill * (20.0 * count + 10.0 * freqs.size * (st.space.states.shape[1] + 1))
     else:
         count = freqs.size
-    if st.fill * count > _MAX_LU_WORK:
+        work = st.fill * 20.0 * count
+    if work > _MAX_LU_WORK:
         raise ExactUnresolved(
-            f"the spectra of {n:,} states need about {count} sparse factorisations of about "
-            f"{st.fill:,} entries each, more than {_MAX_LU_WORK:.3g} entries in all (several "
-            "large trap levels make the factors dense); use the Monte Carlo ensemble "
-            "(`grmc run`) or fewer frequencies")
+            f"the spectra of {n:,} states at {freqs.size} frequencies would touch about "
+            f"{work:.2g} factor entries ({count} sparse factorisations of about {st.fill:,} "
+            f"entries), more than {_MAX_LU_WORK:.3g} (several large trap levels make the "
+            "factors dense); use the Monte Carlo ensemble (`grmc run`) or fewer frequencies")
 
 
 def _check_inputs(model: Model, freqs, times, x0, tol):
