@@ -658,12 +658,13 @@ class Resolvent:
         self._eye = sp.identity(self._Q.shape[0], dtype=np.complex128, format="csc")
         self._lu: dict[int, object] = {}
         self._stored = 0
+        self._fill = 0
 
     def solve(self, i: int, rhs: np.ndarray) -> np.ndarray:
         """``(i w_i I - Q)^-1 rhs`` at frequency number ``i``."""
         b = np.asarray(rhs, dtype=np.complex128).reshape(self._Q.shape[0], -1)
         lu = self._lu.get(i)
-        if lu is None and self._stored >= _REUSE_FILL:
+        if lu is None and self._fill >= _REUSE_FILL:
             x = self._solve_near(i, b)
             if x is not None:
                 return x.reshape(np.shape(rhs))
@@ -675,6 +676,7 @@ class Resolvent:
     def _keep(self, i: int, lu):
         """Keep a factorisation; over the budget, the older ones make room for it."""
         size = lu[0].L.nnz + lu[0].U.nnz
+        self._fill = size  # entries of one factorisation: decides on reuse
         if self._stored + size > _LU_BUDGET:
             self._lu.clear()
             self._stored = 0
