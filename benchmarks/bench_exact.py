@@ -67,6 +67,31 @@ def box(title, *, vol=1e-15, T=300.0, ni=1e10, G=1e22, levels=((3e16, 0.0, 1e-8)
     return BOX.format(title=title, vol=vol, T=T, ni=ni, G=G, traps=traps)
 
 
+LIT40 = """
+title = "lit box, 40 traps"
+[material]
+temperature_K = 300.0
+intrinsic_density_cm3 = 1.0e15
+radiative_cm3_s = 1.0e-10
+[volume]
+volume_cm3 = 2.0e-14
+[[traps]]
+label = "a"
+count = 40
+energy_eV = 0.0
+kind = "acceptor"
+electron_capture_cm3_s = 1.0e-8
+hole_capture_cm3_s = 1.0e-8
+[light]
+generation_cm3_s = 1.0e22
+[run]
+trajectories = 64
+duration_s = 1.0e-6
+samples = 4096
+settle_s = 2.0e-7
+seed = 7
+"""
+
 CASES = {
     "one-level box, 1e-15 cm^3 (30 traps)": box("box 1e-15"),
     "one-level box, 1e-14 cm^3 (300 traps)": box("box 1e-14", vol=1e-14),
@@ -76,6 +101,9 @@ CASES = {
     "cold box, 4 K, shallow-side level (E_t - E_i = 0.05 eV)": box(
         "cold", T=4.0, ni=1e-5, G=1e15, levels=((3e16, 0.05, 1e-8),)),
     "bright box, 1e-15 cm^3, 1e24 cm^-3 s^-1": box("bright", G=1e24),
+    "intrinsic-like lit box, 2e-14 cm^3, 40 traps, ~60 carriers": LIT40,
+    "intrinsic-like lit box, 5e-14 cm^3, 100 traps, ~150 carriers": LIT40.replace(
+        "2.0e-14", "5.0e-14").replace("count = 40", "count = 100"),
 }
 
 CHILD = textwrap.dedent("""

@@ -161,11 +161,16 @@ _CHUNK = 1 << 18
 #: Most factor entries the :class:`Resolvent` keeps (16 bytes each) [entries].
 _LU_BUDGET = 4_000_000
 
-#: Chains of at least this many states solve a frequency near an already factorised one by
-#: preconditioned GMRES instead of a new LU [states].
-_REUSE_MIN = 2000
+#: Where the factors hold at least this many entries, a frequency near an already
+#: factorised one is solved by preconditioned GMRES instead of a new LU (below it a new LU is
+#: cheaper than GMRES's Python-level iterations: measured 1.6 s against 9.2 s for 68
+#: frequencies of a 2993-state box whose factors hold about 1e5 entries) [entries].
+_REUSE_FILL = 1_000_000
 #: Largest ratio of two frequencies for which a kept LU preconditions the other [1].
 _REUSE_RATIO = 4.0
+
+#: Most factor entries the spectra may touch, factorisations and solves together [entries].
+_MAX_LU_WORK = 3.0e9
 
 #: Trap levels of more than this many traps keep a window of occupancies [count].
 _WINDOW_MIN = 64
@@ -429,8 +434,10 @@ def generator(
 # --------------------------------------------------------------------------------------------
 
 
-def _pinned_solve(Q: sp.csr_matrix, k: int) -> np.ndarray:
-    """Solve pi^T Q = 0 with pi_k = 1 (drop equation k, move column k to the right side)."""
+def _pinned_solve(Q: sp.csr_matrix, k: int, stats: dict | None = None) -> np.ndarray:
+    """Solve pi^T Q = 0 with pi_k = 1 (drop equation k, move column k to the right side).
+
+    ``stats["fill"]`` receives the entries of the LU factors."""
     n = Q.shape[0]
     if n == 1:
         return np.ones(1)
@@ -440,6 +447,8 @@ def _pinned_solve(Q: sp.csr_matrix, k: int) -> np.ndarray:
     A = QT[keep][:, keep].tocsc()
     b = -QT[keep][:, [k]].toarray().ravel()
     lu = spla.splu(A, permc_spec=_ORDERING)
+    if stats is not None:
+        stats["fill"] = int(lu.L.nnz + lu.U.nnz)
     x = lu.solve(b)
     # One step of iterative refinement.
     r = b - A @ x
@@ -457,7 +466,8 @@ def _relative_residual(Q: sp.csr_matrix, pi: np.ndarray) -> float:
     return float(np.abs(Q.T @ pi).sum() / flux)
 
 
-def stationary_law(Q: sp.csr_matrix, *, pin: int | None = None) -> tuple[np.ndarray, float]:
+def stationary_law(Q: sp.csr_matrix, *, pin: int | None = None,
+                   stats: dict | None = None) -> tuple[np.ndarray, float]:
     """Stationary law of an irreducible conservative generator.
 
     Parameters
@@ -469,6 +479,8 @@ def stationary_law(Q: sp.csr_matrix, *, pin: int | None = None) -> tuple[np.ndar
         tries when a pin is so unlikely that the solve overflows): the states with the
         smallest and the largest exit rate, the middle, first and last state.  The solve is
         repeated pinned at the most probable state when the pin turns out unlikely.
+    stats : dict, optional
+        Receives ``"fill"``, the entries of the last LU factors [entries].
 
     Returns
     -------
@@ -499,7 +511,7 @@ def stationary_law(Q: sp.csr_matrix, *, pin: int | None = None) -> tuple[np.ndar
     exit_rate = -Q.diagonal()
     if n > 1 and np.all(exit_rate > 0):
         try:
-            flux, _ = _stationary_unscaled(sp.diags(1.0 / exit_rate) @ Q, pin)
+            flux, _ = _stationary_unscaled(sp.diags(1.0 / exit_rate) @ Q, pin, stats)
         except RuntimeError:
             flux = None
         if flux is not None:
@@ -510,10 +522,11 @@ def stationary_law(Q: sp.csr_matrix, *, pin: int | None = None) -> tuple[np.ndar
                 res = _relative_residual(Q, pi)
                 if res <= _RESIDUAL_TOL:
                     return pi, res
-    return _stationary_unscaled(Q, pin)
+    return _stationary_unscaled(Q, pin, stats)
 
 
-def _stationary_unscaled(Q: sp.csr_matrix, pin: int | None) -> tuple[np.ndarray, float]:
+def _stationary_unscaled(Q: sp.csr_matrix, pin: int | None,
+                         stats: dict | None = None) -> tuple[np.ndarray, float]:
     """:func:`stationary_law` on ``Q`` as given (pinned LU, then eigs)."""
     Q = sp.csr_matrix(Q)
     n = Q.shape[0]
@@ -525,12 +538,12 @@ def _stationary_unscaled(Q: sp.csr_matrix, pin: int | None) -> tuple[np.ndarray,
         try:
             with warnings.catch_warnings():
                 warnings.simplefilter("error", spla.MatrixRankWarning)
-                trial = _pinned_solve(Q, k)
+                trial = _pinned_solve(Q, k, stats)
                 if not np.all(np.isfinite(trial)):
                     continue  # pinned at a state so unlikely that the others overflow
                 best = int(np.argmax(trial))
                 if trial[best] > 1e3 * abs(trial[k]) or trial[k] <= 0:
-                    trial = _pinned_solve(Q, best)
+                    trial = _pinned_solve(Q, best, stats)
         except (RuntimeError, spla.MatrixRankWarning):
             continue
         if np.all(np.isfinite(trial)):
@@ -630,9 +643,9 @@ class Resolvent:
     -----
     The count spectra and the flux spectrum of one chain solve with the same matrices; the
     factorisations are kept (up to about ``_LU_BUDGET`` stored entries in all) so that each
-    frequency is factorised once.  Ordering: COLAMD (see ``_ORDERING``).  In chains of at
-    least ``_REUSE_MIN`` states a frequency within a factor ``_REUSE_RATIO`` of a factorised
-    one is solved by GMRES preconditioned with that factorisation (Saad, Iterative Methods for
+    frequency is factorised once.  Ordering: COLAMD (see ``_ORDERING``).  Where the factors
+    hold ``_REUSE_FILL`` entries or more, a frequency within a factor ``_REUSE_RATIO`` of a
+    factorised one is solved by GMRES preconditioned with that factorisation (Saad, Iterative Methods for
     Sparse Linear Systems, 2003, ch. 9, from memory), falling back to its own LU when GMRES
     does not reach a relative residual of 1e-13.
     """
@@ -645,12 +658,13 @@ class Resolvent:
         self._eye = sp.identity(self._Q.shape[0], dtype=np.complex128, format="csc")
         self._lu: dict[int, object] = {}
         self._stored = 0
+        self._fill = 0
 
     def solve(self, i: int, rhs: np.ndarray) -> np.ndarray:
         """``(i w_i I - Q)^-1 rhs`` at frequency number ``i``."""
         b = np.asarray(rhs, dtype=np.complex128).reshape(self._Q.shape[0], -1)
         lu = self._lu.get(i)
-        if lu is None and self._Q.shape[0] >= _REUSE_MIN:
+        if lu is None and self._fill >= _REUSE_FILL:
             x = self._solve_near(i, b)
             if x is not None:
                 return x.reshape(np.shape(rhs))
@@ -662,6 +676,7 @@ class Resolvent:
     def _keep(self, i: int, lu):
         """Keep a factorisation; over the budget, the older ones make room for it."""
         size = lu[0].L.nnz + lu[0].U.nnz
+        self._fill = size  # entries of one factorisation: decides on reuse
         if self._stored + size > _LU_BUDGET:
             self._lu.clear()
             self._stored = 0
@@ -1153,6 +1168,7 @@ class _Stationary:
     best_state: np.ndarray
     j_tail: float = 0.0  # estimated probability beyond j = J
     edge_tails: np.ndarray | None = None  # (K, 2): beyond low_k and beyond high_k
+    fill: int = 0  # entries of the stationary LU factors
 
 
 def _stationary_at(model: Model, J: int, x0, best_state, low=None, high=None) -> _Stationary:
@@ -1170,8 +1186,9 @@ def _stationary_at(model: Model, J: int, x0, best_state, low=None, high=None) ->
         pos = int(np.searchsorted(sup, k))
         if k >= 0 and pos < sup.size and sup[pos] == k:
             pin = pos
+    stats: dict = {}
     try:
-        pi_s, residual = stationary_law(Qs, pin=pin)
+        pi_s, residual = stationary_law(Qs, pin=pin, stats=stats)
     except RuntimeError as exc:
         rates = np.abs(Qs.diagonal())
         raise ExactUnresolved(
@@ -1184,7 +1201,7 @@ def _stationary_at(model: Model, J: int, x0, best_state, low=None, high=None) ->
     edges = _window_tails(space, pi)
     return _Stationary(space, outflow, sup, Qs, pi_s, pi, p_j, float(residual),
                        j_tail + float(edges.sum()), space.states[sup[int(np.argmax(pi_s))]],
-                       j_tail, edges)
+                       j_tail, edges, int(stats.get("fill", 0)))
 
 
 def _window_tails(space: StateSpace, pi: np.ndarray) -> np.ndarray:
@@ -1458,6 +1475,39 @@ def _fit_transient(model: Model, st: _Stationary, tr: _Truncation, x0, times, to
         st = _fit_stationary(model, tr, x0, tol, max_states, False, st.best_state)
 
 
+def _refuse_heavy_spectra(st: _Stationary, freqs: np.ndarray | None) -> None:
+    """Refuse at once spectra whose factorisations would hold too many entries in all.
+
+    The resolvent's factors have about the stationary LU's fill (the same pattern, complex
+    entries); a factorisation touches each entry about 20 times, a solve once.  The
+    frequencies need one factorisation each, or, where the factors hold ``_REUSE_FILL``
+    entries or more, one per factor ``_REUSE_RATIO`` of frequency plus about ten
+    preconditioned solves per observable at every frequency.
+
+    Raises
+    ------
+    ExactUnresolved
+        When the entries touched exceed ``_MAX_LU_WORK`` (several large trap levels make
+        the factors dense much faster than the states grow).
+    """
+    if freqs is None or freqs.size == 0 or st.fill == 0:
+        return
+    n = st.support.size
+    if st.fill >= _REUSE_FILL:
+        span = math.log(float(freqs.max() / freqs.min()))
+        count = 1 + int(span / math.log(_REUSE_RATIO))
+        work = st.fill * (20.0 * count + 10.0 * freqs.size * (st.space.states.shape[1] + 1))
+    else:
+        count = freqs.size
+        work = st.fill * 20.0 * count
+    if work > _MAX_LU_WORK:
+        raise ExactUnresolved(
+            f"the spectra of {n:,} states at {freqs.size} frequencies would touch about "
+            f"{work:.2g} factor entries ({count} sparse factorisations of about {st.fill:,} "
+            f"entries), more than {_MAX_LU_WORK:.3g} (several large trap levels make the "
+            "factors dense); use the Monte Carlo ensemble (`grmc run`) or fewer frequencies")
+
+
 def _check_inputs(model: Model, freqs, times, x0, tol):
     if not (tol > 0):
         raise ValueError(f"tol must be > 0, got {tol}")
@@ -1583,6 +1633,7 @@ def solve(
     st = _fit_stationary(model, tr, x0, tol, max_states, fixed)
     if not fixed:
         st = _trim(model, st, tr, x0, tol, times)
+    _refuse_heavy_spectra(st, freqs)
     tra = _Transient(x0, None, None)
     if times is not None:
         st, tra = _fit_transient(model, st, tr, x0, times, tol, max_states, fixed)
