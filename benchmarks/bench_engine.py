@@ -10,7 +10,7 @@ What is measured
   trajectory (import of the kernels module, then the first call, which compiles);
 * cached load time: a second fresh process with the same cache directory does the same
   (the first call now loads the compiled code);
-* engine events/s: :func:`grmc.engine.kernels.run_prepared` (the kernel alone: tables built
+* engine events/s: :func:`grmc.engine.kernels.run` (the compiled entry alone: tables built
   once, no validation) recording a long window with few samples (16 samples, no oversampling),
   and the same with dense recording (4096 samples x 8 fine bins) for comparison, and the
   public wrapper :func:`grmc.engine.kernels.simulate` (validation and tables per call);
@@ -145,16 +145,17 @@ def main(argv=None) -> None:
     a0 = float(model.propensities(x_start).sum())
     duration = args.events / a0
     tables = kernels.build_tables(*arr)
+    options = kernels.make_options(None, None)
 
     def engine(n_samples: int, oversample: int):
         def run() -> int:
             work = kernels.allocate_work(tables, model.n_species)
             out = kernels.allocate_outputs(model.n_species, model.n_channels, n_samples,
                                            oversample)
-            return int(kernels.run_prepared(
-                x_start, *tables[:-1], *work, rng.stream_state(2, 0), 0.0,
-                np.zeros(model.n_species, dtype=np.int64), duration, np.int64(n_samples),
-                np.int64(oversample), *out))
+            return int(kernels.run(
+                tables, options, work, out, x_start, np.zeros(model.n_species, dtype=np.int64),
+                rng.stream_state(2, 0), 0.0, duration, np.int64(n_samples),
+                np.int64(oversample)))
         return run
 
     def wrapper() -> int:

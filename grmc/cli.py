@@ -47,6 +47,16 @@ def _nonneg_int(text: str) -> int:
     return value
 
 
+def _positive_float(text: str) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a number, got {text!r}") from None
+    if not value > 0 or value == float("inf"):
+        raise argparse.ArgumentTypeError(f"must be a finite number > 0, got {text}")
+    return value
+
+
 def _command_line(argv: list[str] | None) -> str:
     args = sys.argv[1:] if argv is None else argv
     return " ".join(["grmc", *(shlex.quote(a) for a in args)])
@@ -102,32 +112,48 @@ def cmd_plot(args) -> int:
     return EXIT_OK
 
 
+def _export_request(args, path: Path, ds) -> tuple[str | None, tuple[float, float]]:
+    """Check --quantity and --band against the file; return (quantity, band)."""
+    from .export_curve import ExportOptionError, parse_band
+
+    quantity = args.quantity
+    names = [str(s) for s in ds["species"].values] if "species" in ds else []
+    if quantity is not None and quantity != "current" and quantity not in names:
+        raise UsageError(f"{path}: --quantity {quantity!r} is not in the file "
+                         f"({', '.join(['current', *names])})")
+    if quantity == "current" and "current_psd" not in ds:
+        raise UsageError(f"{path}: --quantity: the file has no current (the scenario had no "
+                         "[readout])")
+    if args.format in ("spice", "verilog-a") and "current_psd" not in ds:
+        raise UsageError(f"{path}: --format {args.format}: the file has no current (the "
+                         "scenario had no [readout]); export a count with --format csv")
+    try:
+        band = parse_band(args.band)
+    except ExportOptionError as exc:
+        raise UsageError(f"{path}: {exc}") from None
+    return quantity, band
+
+
 def cmd_export(args) -> int:
     from .dataset import load
-    from .export import export_csv, export_verilog_a
+    from .export import export_csv, export_spice, export_verilog_a
 
     path = _existing_file(args.file)
     ds = load(path)
-    quantity = args.quantity
-    if quantity is not None and quantity != "current":
-        if quantity not in [str(s) for s in ds["species"].values]:
-            names = ", ".join(["current", *map(str, ds["species"].values)])
-            raise UsageError(f"{path}: --quantity {quantity!r} is not in the file ({names})")
-    if quantity == "current" and "current_psd" not in ds:
-        raise UsageError(f"{path}: the file has no current (the scenario had no [readout])")
+    quantity, band = _export_request(args, path, ds)
+    common = dict(quantity=quantity, source=args.source, band=band)
     try:
         if args.format == "csv":
-            written = export_csv(ds, args.output, quantity=quantity)
+            written = export_csv(ds, args.output, **common)
+        elif args.format == "spice":
+            written = export_spice(ds, args.output, **common)
         else:
-            written = export_verilog_a(ds, args.output, quantity=quantity,
-                                       interpolation=args.interpolation, source=args.source)
+            written = export_verilog_a(ds, args.output, interpolation=args.interpolation,
+                                       **common)
     except ValueError as exc:
         raise UsageError(f"{path}: {exc}") from None
-    if isinstance(written, (list, tuple)):
-        for w in written:
-            print(f"wrote {w}")
-    else:
-        print(f"wrote {written or args.output}")
+    for w in (written if isinstance(written, (list, tuple)) else [written]):
+        print(f"wrote {w}")
     return EXIT_OK
 
 
@@ -156,7 +182,8 @@ def cmd_sweep(args) -> int:
     out = Path(args.output) if args.output else _default_output(args.scenario, "_sweep")
     try:
         run_sweep(scenario, varies, out, scheduler=args.scheduler, resume=args.resume,
-                  workers=args.workers, command=args.command_line)
+                  workers=args.workers, command=args.command_line,
+                  noise_frequencies=tuple(args.frequency) if args.frequency else None)
     except KeyboardInterrupt:
         print(f"grmc: interrupted; finished points are kept in {out}.parts, "
               "run the same command with --resume to continue", file=sys.stderr)
@@ -203,14 +230,20 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("-o", "--output", help="folder for the PNGs (default: next to the file)")
     p.set_defaults(func=cmd_plot)
 
-    p = sub.add_parser("export", help="a noise spectrum for circuit work (CSV or Verilog-A)")
+    p = sub.add_parser("export", help="a noise spectrum for circuit work (CSV, Verilog-A, "
+                       "SPICE subcircuit)")
     p.add_argument("file", help="output file (.nc)")
-    p.add_argument("--format", required=True, choices=("csv", "verilog-a"))
+    p.add_argument("--format", required=True, choices=("csv", "verilog-a", "spice"))
     p.add_argument("--quantity", help="'current' (default where present) or a species name")
     p.add_argument("--interpolation", choices=("linear", "log"), default="linear",
                    help="Verilog-A: noise_table (linear) or noise_table_log (log-log)")
-    p.add_argument("--source", choices=("mc", "fit", "lna"), default="mc",
-                   help="Verilog-A: which spectrum to tabulate")
+    p.add_argument("--source", choices=("fit", "lna", "mc"), default=None,
+                   help="the exported curve: the stored Lorentzian fit, the linear-noise "
+                   "spectrum or the Monte Carlo estimate (default: fit where it passed its "
+                   "checks, else lna)")
+    p.add_argument("--band", default="1:1e11", metavar="F1:F2",
+                   help="band of the export in Hz (default 1:1e11); outside the simulated "
+                   "band the fitted or linear-noise tails")
     p.add_argument("-o", "--output", required=True, help="file to write")
     p.set_defaults(func=cmd_export)
 
@@ -226,6 +259,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--scheduler", help="address of a running Dask scheduler")
     p.add_argument("--resume", action="store_true", help="continue an interrupted sweep")
     p.add_argument("--workers", type=_positive_int, help="local Dask workers (default: cores)")
+    p.add_argument("--frequency", type=_positive_float, action="append", metavar="HZ",
+                   help="with a [readout]: record the current noise at this frequency "
+                   "(repeatable; default 1000 Hz)")
     p.add_argument("-o", "--output", help="output file (default outputs/<stem>_sweep.nc)")
     p.set_defaults(func=cmd_sweep)
 

@@ -55,6 +55,7 @@ from .scenario import Material, Trap
 
 __all__ = [
     "ContinuumError",
+    "channel_psd",
     "LNAResult",
     "equilibrium",
     "FluxLNA",
@@ -933,24 +934,63 @@ def flux_lna(model: Model, freqs: np.ndarray, *, x: np.ndarray | None = None,
     else:
         x = np.asarray(x, dtype=np.float64)
         empty = _empty_of(model, x) if empty is None else np.asarray(empty, dtype=np.float64)
-    res = lna(model, x, empty=empty)
     laws = _Laws(model)
     flow = np.asarray(model.flow_weight, dtype=np.float64)
     w = laws.rates(x, empty)
+    parts = channel_psd(model, freqs, flow=flow, x=x, empty=empty)
+    return FluxLNA(mean=float(flow @ w), white=float(2.0 * (flow**2 @ w)),
+                   psd=parts.sum(axis=1))
+
+
+def channel_psd(model: Model, freqs: np.ndarray, gradient: np.ndarray | None = None, *,
+                flow: np.ndarray | None = None, x: np.ndarray | None = None,
+                empty: np.ndarray | None = None) -> np.ndarray:
+    """Linear-noise spectrum of an observable, split into the part each channel's noise drives.
+
+    The observable is ``y = gradient . x + sum_r flow_r dN_r/dt`` (a drift current of the
+    counts, a flux of crossings, or both).  Each channel fires at ``w_r + xi_r`` with white
+    ``xi_r`` of intensity ``w_r``, so ``dy(w) = sum_r g_r(w) xi_r`` with
+    ``g_r(w) = flow_r + gradient^T (i w - A)^-1 nu_r`` and the channels' parts
+    ``2 |g_r(w)|^2 w_r`` add up to the one-sided spectrum of ``y`` (van Kampen, Stochastic
+    Processes in Physics and Chemistry, 2007, ch. X).
+
+    Parameters
+    ----------
+    model : Model
+    freqs : array_like  Frequencies >= 0 [Hz]
+    gradient : array_like (species,), optional  dy/dx [y per count]; default the flux's
+        own ``sum_r flow_r dw_r/dx`` (the change a count makes in the later crossing rates)
+    flow : array_like (channels,), optional  Weight of each channel's events in y (default 0)
+    x, empty : optional  Expansion point (and empty traps); default the continuum steady state
+
+    Returns
+    -------
+    ndarray (F, channels)  Each channel's part of the one-sided spectrum [y^2/Hz]
+    """
+    if x is None:
+        x, empty = _solve(model)
+    else:
+        x = np.asarray(x, dtype=np.float64)
+        empty = _empty_of(model, x) if empty is None else np.asarray(empty, dtype=np.float64)
+    res = lna(model, x, empty=empty)
+    laws = _Laws(model)
+    n_ch = laws.nu.shape[0]
+    flow = np.zeros(n_ch) if flow is None else np.asarray(flow, dtype=np.float64)
+    w = laws.rates(x, empty)
+    if gradient is None:
+        gradient = flow @ laws.rate_jacobian(x, empty)
     f = np.atleast_1d(np.asarray(freqs, dtype=np.float64))
     if f.ndim != 1 or np.any(f < 0):
         raise ValueError("freqs must be a 1-D array of frequencies >= 0")
     a_r, proj, ind = res.reduced_jacobian, res.projection, res.independent
-    phi = flow @ laws.rate_jacobian(x, empty)  # (species,)
-    g = np.broadcast_to(flow.astype(np.complex128), (f.size, flow.size)).copy()
+    g = np.broadcast_to(flow.astype(np.complex128), (f.size, n_ch)).copy()
     if ind.size:
         nu_r = laws.nu[:, ind]  # (channels, r)
         mats = 2j * np.pi * f[:, None, None] * np.eye(ind.size) - a_r
         resp = np.linalg.solve(mats, np.broadcast_to(nu_r.T.astype(np.complex128),
                                                      (f.size,) + nu_r.T.shape))
-        g += np.einsum("s,sa,far->fr", phi, proj, resp)
-    return FluxLNA(mean=float(flow @ w), white=float(2.0 * (flow**2 @ w)),
-                   psd=2.0 * (np.abs(g) ** 2 @ w))
+        g += np.einsum("s,sa,far->fr", np.asarray(gradient, dtype=np.float64), proj, resp)
+    return 2.0 * np.abs(g) ** 2 * w
 
 
 # --------------------------------------------------------------------------------------------

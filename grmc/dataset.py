@@ -94,6 +94,13 @@ VARIABLES: dict[str, Var] = {
                               "crossing: 2 q (I_out + I_in)"),
     "current_psd_lna": Var(("frequency",), "A2 Hz-1",
                            "linear-noise one-sided power spectral density of the current"),
+    "current_noise_rms": Var((), "A", "rms noise current over the readout band [readout] "
+                             "band_Hz, square root of the spectrum integrated over the band"),
+    "current_noise_rms_low": Var((), "A", "lower end of the 95 % interval of current_noise_rms"),
+    "current_noise_rms_high": Var((), "A",
+                                  "upper end of the 95 % interval of current_noise_rms"),
+    "current_noise_rms_lna": Var((), "A", "linear-noise rms noise current over the readout "
+                                 "band"),
     "count_histogram": Var(("species", "count_value"), "1",
                            "time-weighted probability of each count over the window", _ENS),
     "donors": Var(("realization",), "1", "donors in the volume of each trajectory"),
@@ -178,6 +185,11 @@ VARIABLES: dict[str, Var] = {
     "telegraph_fraction_stderr": Var(("noise_frequency",), "1",
                                      "binomial standard error of telegraph_fraction"),
     "probability_outside": Var((), "1", "probability mass outside the truncated state space"),
+    "intrinsic_density": Var((), "cm-3", "intrinsic carrier density used"),
+    "band_gap": Var((), "eV", "band gap of the material at the temperature"),
+    "current_psd_photon": Var(("frequency",), "A2 Hz-1",
+                              "part of the linear-noise current spectrum driven by the shot "
+                              "noise of the optical generation"),
 }
 
 

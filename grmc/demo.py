@@ -30,7 +30,7 @@ def run_demo(outdir: Path, *, workers: int | None = None, command: str | None = 
     dict  ``{"netcdf": Path, "plots": [Path...], "exports": [Path...]}``
     """
     from .dataset import save
-    from .export import export_csv, export_verilog_a
+    from .export import export_csv, export_spice, export_verilog_a
     from .plotting import plot_all
     from .report import format_run_table
     from .simulate import run
@@ -50,6 +50,7 @@ def run_demo(outdir: Path, *, workers: int | None = None, command: str | None = 
     if quantity == "current":
         va = export_verilog_a(ds, outdir / f"{path.stem}_noise.va", quantity=quantity)
         exports.extend(va if isinstance(va, (list, tuple)) else [va])
+        exports.append(export_spice(ds, outdir / f"{path.stem}_noise.cir"))
     print("\nresults:")
     print(f"  data     {nc}")
     for p in plots:

@@ -1350,7 +1350,8 @@ def telegraph_psd(f: np.ndarray, tau_1: float, tau_0: float, delta: float = 1.0)
 
     References
     ----------
-    S. Machlup, J. Appl. Phys. 25, 341 (1954).
+    S. Machlup, "Noise in semiconductors: spectrum of a two-parameter random signal",
+    J. Appl. Phys. 25, 341 (1954).
     """
     f = np.asarray(f, dtype=np.float64)
     rate = 1.0 / tau_1 + 1.0 / tau_0

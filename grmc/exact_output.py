@@ -10,6 +10,7 @@ from __future__ import annotations
 import numpy as np
 
 from . import continuum, exact
+from .bandnoise import band_variables
 from .dataset import finish
 from .model import build_model
 from .readout import counts_events, describe_current, exact_current, lna_current
@@ -93,6 +94,9 @@ def exact_dataset(scenario: Scenario, *, command: str | None = None,
         data["current_mean_continuum"] = ((), theory.mean)
         if counts_events(model):
             data["current_shot_noise"] = ((), cur.white)
+        if readout.band_Hz is not None:  # exact spectrum: no sampling interval
+            data.update(band_variables(freqs, cur.psd, readout.band_Hz,
+                                       lna=lambda f: lna_current(model, f).psd))
         attrs.update({"readout_bias_V": readout.bias_V, "readout_length_cm": readout.length_cm,
                       "readout_current": describe_current(model)})
     coords = {

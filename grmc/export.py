@@ -1,21 +1,28 @@
-"""Noise spectra for circuit work: CSV tables and Verilog-A noise sources.
+"""Noise spectra for circuit work: CSV tables, Verilog-A noise sources, SPICE subcircuits.
 
 From an output Dataset (docs/file-format.md) this module writes
 
 * a CSV table of one spectrum (the readout current, or the count of one species) with its
-  95 % interval and the linear-noise line, under a ``#`` header that says what it is;
+  95 % interval, the linear-noise line and the exported curve over the whole band, each row
+  marked ``simulated`` or ``extended``, under a ``#`` header that says what it is;
 * a Verilog-A module with a current noise source ``I(p, n) <+ noise_table(...)`` whose
-  table is the current spectrum resampled to about 20 points per decade, plus the same table
-  as a plain two-column file ``<stem>.tbl``.
+  table is the exported curve at about 20 points per decade over the band, plus the same
+  table as a plain two-column file ``<stem>.tbl``;
+* a SPICE ``.subckt NAME p n`` made of resistors, capacitors and controlled sources whose
+  noise current has the exported spectrum (:mod:`grmc.spice`).
 
-Every file is written to a temporary name in the target directory and then renamed, so a
-failed export never leaves a partial file where a good one is expected.
+The exported curve, its source (``fit``, ``lna``, ``mc``) and band are chosen in
+:mod:`grmc.export_curve` (docs/circuit-export.md).  Every file is written to a temporary
+name in the target directory and then renamed, so a failed export never leaves a partial
+file where a good one is expected.
 
 Public API
 ----------
-export_csv(ds, path, *, quantity=None) -> Path
+export_csv(ds, path, *, quantity=None, source=None, band=(1, 1e11)) -> Path
 export_verilog_a(ds, path, *, quantity=None, interpolation="linear", module_name=None,
-                 source="mc", table="inline", points_per_decade=20) -> tuple[Path, Path]
+                 source=None, band=(1, 1e11), table="inline", points_per_decade=20)
+                 -> tuple[Path, Path]
+export_spice(ds, path, *, quantity=None, source=None, band=(1, 1e11), name=None) -> Path
 read_noise_table(path) -> (f, S)
 spectrum_table(ds, quantity=None) -> SpectrumTable
 """
@@ -34,6 +41,10 @@ import numpy as np
 
 from . import spectra
 from .atomic import write_text_atomic
+from .export_curve import (DEFAULT_BAND_HZ, ExportCurve, ExportOptionError, export_curve,
+                           lna_theory)
+from .rational import RationalSpectrum, positive_fit
+from .spice import spice_name, subcircuit
 
 if TYPE_CHECKING:  # pragma: no cover
     import xarray as xr
@@ -41,6 +52,7 @@ if TYPE_CHECKING:  # pragma: no cover
 __all__ = [
     "SpectrumTable",
     "export_csv",
+    "export_spice",
     "export_verilog_a",
     "read_noise_table",
     "resample_spectrum",
@@ -149,6 +161,65 @@ def _one_d(da: xr.DataArray, what: str) -> np.ndarray:
     return np.asarray(da.values, dtype=float)
 
 
+def _segments(ds: xr.Dataset) -> float | None:
+    """K, the periodogram values averaged per frequency, where the file states it."""
+    n_seg: float | None = None
+    for holder in (ds.attrs, ds["psd"].attrs if "psd" in ds else {}):
+        for key in ("psd_segments", "n_segments", "segments_total"):
+            if key in holder:
+                n_seg = float(holder[key])
+    return n_seg
+
+
+def _current_arrays(ds: xr.Dataset, names: list[str]):
+    """psd, low, high, lna of the readout current."""
+    if "current_psd" not in ds:
+        raise ValueError(
+            "this file has no current_psd (the scenario has no [readout]); "
+            f"give a species instead: {', '.join(names)}"
+        )
+    psd = _one_d(ds["current_psd"], "current_psd")
+    if "current_psd_low" in ds and "current_psd_high" in ds:
+        low = _one_d(ds["current_psd_low"], "current_psd_low")
+        high = _one_d(ds["current_psd_high"], "current_psd_high")
+    elif "psd" in ds and "psd_low" in ds and "psd_high" in ds:
+        ref = ds["psd"].isel(species=0)
+        rel_lo = _one_d(ds["psd_low"].isel(species=0), "psd_low") / _one_d(ref, "psd")
+        rel_hi = _one_d(ds["psd_high"].isel(species=0), "psd_high") / _one_d(ref, "psd")
+        low, high = psd * rel_lo, psd * rel_hi
+    else:
+        low = high = np.full_like(psd, np.nan)
+    lna = _one_d(ds["current_psd_lna"], "current_psd_lna") if "current_psd_lna" in ds else None
+    return psd, low, high, lna
+
+
+def _species_arrays(ds: xr.Dataset, names: list[str], quantity: str):
+    """psd, low, high, lna of one species' count."""
+    if quantity not in names:
+        opts = ", ".join((["current"] if "current_psd" in ds else []) + names)
+        raise ValueError(f"unknown quantity {quantity!r}; this file has: {opts}")
+    sel = {"species": names.index(quantity)}
+    psd = _one_d(ds["psd"].isel(sel), "psd")
+    if "psd_low" in ds and "psd_high" in ds:
+        low = _one_d(ds["psd_low"].isel(sel), "psd_low")
+        high = _one_d(ds["psd_high"].isel(sel), "psd_high")
+    else:
+        low = high = np.full_like(psd, np.nan)
+    lna = _one_d(ds["psd_lna"].isel(sel), "psd_lna") if "psd_lna" in ds else None
+    return psd, low, high, lna
+
+
+def _interval_note(ds: xr.Dataset, low: np.ndarray, n_seg: float | None) -> str:
+    if "probability_outside" in ds:
+        return "none (an exact master-equation spectrum; psd_low, psd_high are nan)"
+    if np.all(~np.isfinite(low)):
+        return "none in the file (psd_low, psd_high are nan)"
+    k_txt = f"K = {n_seg:.6g}" if n_seg is not None else "K"
+    return ("psd_low .. psd_high is the 95 % chi-squared interval of an average of "
+            f"{k_txt} periodogram values "
+            "(nu = 2K degrees of freedom; Welch, IEEE Trans. Audio Electroacoust. 15, 70, 1967)")
+
+
 def spectrum_table(ds: Any, quantity: str | None = None) -> SpectrumTable:
     """Take one spectrum with its interval out of an output Dataset.
 
@@ -178,71 +249,28 @@ def spectrum_table(ds: Any, quantity: str | None = None) -> SpectrumTable:
     names = _species_names(ds)
     if quantity is None:
         quantity = "current" if "current_psd" in ds else "electrons"
-    title = str(ds.attrs.get("title", "untitled scenario"))
     freq = _one_d(ds["frequency"], "frequency")
-    n_seg: float | None = None
-    for holder in (ds.attrs, ds["psd"].attrs if "psd" in ds else {}):
-        for key in ("psd_segments", "n_segments", "segments_total"):
-            if key in holder:
-                n_seg = float(holder[key])
+    n_seg = _segments(ds)
     current_mean = None
     if "current_mean" in ds and ds["current_mean"].ndim == 0:
         current_mean = float(ds["current_mean"].values)
-
-    if quantity == "current":
-        if "current_psd" not in ds:
-            raise ValueError(
-                "this file has no current_psd (the scenario has no [readout]); "
-                f"give a species instead: {', '.join(names)}"
-            )
-        psd = _one_d(ds["current_psd"], "current_psd")
-        if "current_psd_low" in ds and "current_psd_high" in ds:
-            low = _one_d(ds["current_psd_low"], "current_psd_low")
-            high = _one_d(ds["current_psd_high"], "current_psd_high")
-        elif "psd" in ds and "psd_low" in ds and "psd_high" in ds:
-            ref = ds["psd"].isel(species=0)
-            rel_lo = _one_d(ds["psd_low"].isel(species=0), "psd_low") / _one_d(ref, "psd")
-            rel_hi = _one_d(ds["psd_high"].isel(species=0), "psd_high") / _one_d(ref, "psd")
-            low, high = psd * rel_lo, psd * rel_hi
-        else:
-            low = high = np.full_like(psd, np.nan)
-        lna = _one_d(ds["current_psd_lna"], "current_psd_lna") if "current_psd_lna" in ds else None
-        units, is_current = "A^2/Hz", True
+    is_current = quantity == "current"
+    if is_current:
+        psd, low, high, lna = _current_arrays(ds, names)
     else:
-        if quantity not in names:
-            opts = ", ".join((["current"] if "current_psd" in ds else []) + names)
-            raise ValueError(f"unknown quantity {quantity!r}; this file has: {opts}")
-        sel = {"species": names.index(quantity)}
-        psd = _one_d(ds["psd"].isel(sel), "psd")
-        if "psd_low" in ds and "psd_high" in ds:
-            low = _one_d(ds["psd_low"].isel(sel), "psd_low")
-            high = _one_d(ds["psd_high"].isel(sel), "psd_high")
-        else:
-            low = high = np.full_like(psd, np.nan)
-        lna = _one_d(ds["psd_lna"].isel(sel), "psd_lna") if "psd_lna" in ds else None
-        units, is_current = "counts^2/Hz", False
-
+        psd, low, high, lna = _species_arrays(ds, names, quantity)
     if n_seg is None and np.any(np.isfinite(low)):
         try:
             n_seg = spectra.segments_from_interval(psd, low, high)
         except ValueError:
             n_seg = None
-    if "probability_outside" in ds:
-        note = "none (an exact master-equation spectrum; psd_low, psd_high are nan)"
-    elif np.all(~np.isfinite(low)):
-        note = "none in the file (psd_low, psd_high are nan)"
-    else:
-        k_txt = f"K = {n_seg:.6g}" if n_seg is not None else "K"
-        note = (
-            "psd_low .. psd_high is the 95 % chi-squared interval of an average of "
-            f"{k_txt} periodogram values "
-            "(nu = 2K degrees of freedom; Welch, IEEE Trans. Audio Electroacoust. 15, 70, 1967)"
-        )
     return SpectrumTable(
-        quantity=quantity, is_current=is_current, units=units, frequency=freq, psd=psd,
-        psd_low=low, psd_high=high, psd_lna=lna, n_segments=n_seg, interval_note=note,
-        exact="probability_outside" in ds,
-        title=title, bias_V=_bias(ds), current_mean_A=current_mean,
+        quantity=quantity, is_current=is_current,
+        units="A^2/Hz" if is_current else "counts^2/Hz", frequency=freq, psd=psd,
+        psd_low=low, psd_high=high, psd_lna=lna, n_segments=n_seg,
+        interval_note=_interval_note(ds, low, n_seg), exact="probability_outside" in ds,
+        title=str(ds.attrs.get("title", "untitled scenario")), bias_V=_bias(ds),
+        current_mean_A=current_mean,
         current_definition=str(ds.attrs.get("readout_current", _DRIFT)),
     )
 
@@ -275,14 +303,77 @@ def _header_lines(tab: SpectrumTable) -> list[str]:
     return lines
 
 
-def export_csv(ds: Any, path: str | os.PathLike[str], *, quantity: str | None = None) -> Path:
-    """Write one spectrum with its interval as CSV.
+def _band_noise_lines(ds: Any, tab: SpectrumTable) -> list[str]:
+    """The file's rms noise current over the readout band, where it has one."""
+    if not tab.is_current or "current_noise_rms" not in ds:
+        return []
+    band = ds["current_noise_rms"].attrs.get("band_Hz")
+    where = (f"{float(band[0]):g} .. {float(band[1]):g} Hz" if band is not None
+             else "the readout band")
+    text = f"rms noise current over the readout band {where}: "
+    rms = float(ds["current_noise_rms"])
+    text += f"{rms:.6e} A" if math.isfinite(rms) else "not resolved by the run"
+    if "current_noise_rms_low" in ds and math.isfinite(rms):
+        text += (f" (95 % interval {float(ds['current_noise_rms_low']):.4e} .. "
+                 f"{float(ds['current_noise_rms_high']):.4e} A)")
+    if "current_noise_rms_lna" in ds:
+        text += f"; linear noise {float(ds['current_noise_rms_lna']):.6e} A"
+    return [text]
+
+
+def _curve_lines(ds: Any, tab: SpectrumTable, cur: ExportCurve) -> list[str]:
+    """Header lines every circuit export shares: source, band, deviation, band noise."""
+    lines = [
+        f"source: {cur.source} -- {cur.how}",
+        f"band: {cur.band[0]:g} .. {cur.band[1]:g} Hz; simulated band {cur.simulated[0]:.6g} "
+        f".. {cur.simulated[1]:.6g} Hz",
+        cur.deviation_text(),
+    ]
+    return lines + _band_noise_lines(ds, tab)
+
+
+def _prepare(ds: Any, quantity: str | None, source: str | None, band: tuple[float, float],
+             current_for: str = "") -> tuple[Any, SpectrumTable, ExportCurve]:
+    """The file, its spectrum and the exported curve; ``current_for`` names a format that
+    needs a current (refused for a count first)."""
+    ds = _open(ds)
+    tab = spectrum_table(ds, quantity)
+    if current_for and not tab.is_current:
+        raise ExportOptionError(
+            "--quantity", f"{tab.quantity!r} is a count spectrum [counts^2/Hz], not a current: "
+            f"a {current_for} noise source needs A^2/Hz (add a [readout] to the scenario), or "
+            "export the counts as CSV")
+    return ds, tab, export_curve(ds, tab, source=source, band=band)
+
+
+def _csv_rows(tab: SpectrumTable, cur: ExportCurve, points_per_decade: int):
+    """Frequencies of the CSV: the file's own inside the band, a log grid outside the
+    simulated band; and whether each row is simulated."""
+    lo, hi = cur.band[0] * (1 - 1e-12), cur.band[1] * (1 + 1e-12)  # rounding of f = j/T
+    f_file = tab.frequency[(tab.frequency >= lo) & (tab.frequency <= hi)]
+    grid = _log_grid(cur.band[0], cur.band[1], points_per_decade)
+    f_ext = grid[~cur.is_simulated(grid)]
+    f = np.concatenate([f_file, f_ext])
+    simulated = np.concatenate([np.ones(f_file.size, bool), np.zeros(f_ext.size, bool)])
+    order = np.argsort(f, kind="stable")
+    return f[order], simulated[order]
+
+
+def export_csv(ds: Any, path: str | os.PathLike[str], *, quantity: str | None = None,
+               source: Literal["fit", "lna", "mc"] | None = None,
+               band: tuple[float, float] = DEFAULT_BAND_HZ,
+               points_per_decade: int = 20) -> Path:
+    """Write one spectrum with its interval, and the exported curve over the band, as CSV.
 
     Parameters
     ----------
     ds : xarray.Dataset or path  Output file contents
     path : path  CSV file to write
     quantity : str, optional  "current" or a species name (see :func:`spectrum_table`)
+    source : "fit" | "lna" | "mc", optional  The curve in ``psd_export`` (see
+        :func:`grmc.export_curve.export_curve`; default fit where it passed, else lna)
+    band : (f1, f2)  Band of the table [Hz]
+    points_per_decade : int  Density of the rows outside the simulated band [1]
 
     Returns
     -------
@@ -290,33 +381,44 @@ def export_csv(ds: Any, path: str | os.PathLike[str], *, quantity: str | None = 
 
     Notes
     -----
-    Columns ``frequency_Hz, psd, psd_low, psd_high`` and ``psd_lna`` where the file has
-    the linear-noise spectrum; ``#`` comment lines first (scenario title, quantity, units,
-    one-sidedness, how the interval was made).  Readable with
-    ``numpy.loadtxt(path, delimiter=",", skiprows=...)`` or ``pandas.read_csv(path,
-    comment="#")``.
+    Columns ``frequency_Hz, psd, psd_low, psd_high`` (the file's estimate and its 95 %
+    interval; nan on extended rows), ``psd_lna`` (the file's linear-noise spectrum; on
+    extended rows recomputed from the scenario where possible), ``psd_export`` (the chosen
+    source over the whole band) and ``region`` (``simulated`` or ``extended``); ``#`` comment
+    lines first (scenario title, quantity, units, one-sidedness, how the interval was made,
+    the source, the band, the largest deviation from the Monte Carlo estimate, the rms noise
+    in the readout band).  Readable with ``pandas.read_csv(path, comment="#")``.
     """
-    tab = spectrum_table(ds, quantity)
+    ds, tab, cur = _prepare(ds, quantity, source, band)
     path = Path(path)
-    cols = {"frequency_Hz": tab.frequency, "psd": tab.psd, "psd_low": tab.psd_low,
-            "psd_high": tab.psd_high}
-    if tab.psd_lna is not None:
-        cols["psd_lna"] = tab.psd_lna
-    head = _header_lines(tab) + [
-        f"interval: {tab.interval_note}",
-    ]
-    if tab.psd_lna is not None:
+    f, simulated = _csv_rows(tab, cur, points_per_decade)
+    idx = np.clip(np.searchsorted(tab.frequency, f), 0, tab.frequency.size - 1)
+    nan = np.full(f.size, np.nan)
+    cols = {"frequency_Hz": f,
+            "psd": np.where(simulated, tab.psd[idx], nan),
+            "psd_low": np.where(simulated, tab.psd_low[idx], nan),
+            "psd_high": np.where(simulated, tab.psd_high[idx], nan)}
+    theory = lna_theory(ds, tab.quantity)
+    if tab.psd_lna is not None or theory is not None:
+        lna = np.where(simulated, tab.psd_lna[idx], nan) if tab.psd_lna is not None else nan
+        if theory is not None and np.any(~simulated):
+            lna = np.where(simulated, lna, theory[0](np.where(simulated, cur.band[0], f)))
+        cols["psd_lna"] = lna
+    cols["psd_export"] = cur(f)
+    head = _header_lines(tab) + [f"interval: {tab.interval_note}"] + _curve_lines(ds, tab, cur)
+    if "psd_lna" in cols:
         head.append("psd_lna: linear-noise approximation (van Kampen's system-size expansion)")
-    if tab.exact:
-        head.append("psd: exact spectrum of the master equation (finite state projection)")
-    else:
-        head.append("psd: Monte Carlo estimate of the continuous-time spectrum, corrected "
-                    "for sampling (bin averaging, aliasing)")
+    head.append("psd: exact spectrum of the master equation (finite state projection)"
+                if tab.exact else "psd: Monte Carlo estimate of the continuous-time spectrum, "
+                "corrected for sampling (bin averaging, aliasing)")
+    head.append("psd_export: the exported curve (source above); region: simulated = a "
+                "frequency of the file, extended = outside the simulated band")
     out = ["# " + h for h in head]
-    out.append(",".join(cols))
+    out.append(",".join([*cols, "region"]))
     data = np.column_stack(list(cols.values()))
-    for row in data:
-        out.append(",".join("nan" if not np.isfinite(v) else _fmt(v) for v in row))
+    for row, sim in zip(data, simulated):
+        vals = ["nan" if not np.isfinite(v) else _fmt(v) for v in row]
+        out.append(",".join([*vals, "simulated" if sim else "extended"]))
     _atomic_write(path, "\n".join(out) + "\n")
     return path
 
@@ -388,35 +490,6 @@ def resample_spectrum(
     return grid, 10.0**y
 
 
-def _verilog_table(tab: SpectrumTable, source: str, points_per_decade: int
-                   ) -> tuple[np.ndarray, np.ndarray, str]:
-    if source == "mc":
-        f, s = resample_spectrum(tab.frequency, tab.psd, points_per_decade=points_per_decade)
-        what = "exact master-equation spectrum" if tab.exact else "Monte Carlo estimate"
-        how = f"{what}, averaged over bands one grid step wide in log f, then interpolated log-log"
-    elif source == "lna":
-        if tab.psd_lna is None:
-            raise ValueError("source='lna' needs current_psd_lna in the file")
-        f, s = resample_spectrum(tab.frequency, tab.psd_lna,
-                                 points_per_decade=points_per_decade, smooth=False)
-        how = "linear-noise approximation, interpolated log-log"
-    elif source == "fit":
-        res = spectra.analyse_spectrum(tab.frequency, tab.psd, tab.psd_low, tab.psd_high,
-                                       tab.n_segments)
-        if res.kind == "unresolved":
-            raise ValueError(f"no trustworthy Lorentzian fit to export ({res.message}); "
-                             "use source='mc' or 'lna'")
-        band = tab.frequency[np.isfinite(tab.psd) & (tab.psd > 0)]
-        f = _log_grid(float(band.min()), float(band.max()), points_per_decade)
-        s = np.zeros_like(f)
-        for c in res.components:
-            s += c.S0 / (1.0 + (f / c.f_c) ** 2)
-        how = "fitted Lorentzian(s): " + res.message
-    else:
-        raise ValueError(f"source must be 'mc', 'fit' or 'lna', got {source!r}")
-    return f, s, how
-
-
 def _module_name(name: str | None, stem: str) -> str:
     if name is not None:
         if not _IDENTIFIER.match(name) or name in _KEYWORDS:
@@ -428,84 +501,8 @@ def _module_name(name: str | None, stem: str) -> str:
     return cand
 
 
-def export_verilog_a(
-    ds: Any,
-    path: str | os.PathLike[str],
-    *,
-    quantity: str | None = None,
-    interpolation: Literal["linear", "log"] = "linear",
-    module_name: str | None = None,
-    source: Literal["mc", "fit", "lna"] = "mc",
-    table: Literal["inline", "file"] = "inline",
-    points_per_decade: int = 20,
-) -> tuple[Path, Path]:
-    """Write a Verilog-A current noise source with the tabulated current spectrum.
-
-    Parameters
-    ----------
-    ds : xarray.Dataset or path  Output file contents (needs ``current_psd``)
-    path : path  The ``.va`` file; the table goes to ``<stem>.tbl`` next to it
-    quantity : str, optional  Must be "current" (the default where the file has it)
-    interpolation : "linear" | "log"  ``noise_table`` (LRM 2.4 section 4.6.4.3: linear in
-        f and S) or ``noise_table_log`` (section 4.6.4.4: linear in log f, log S)
-    module_name : str, optional  Default: the file stem, made a legal identifier
-    source : "mc" | "fit" | "lna"  What is tabulated: the Monte Carlo estimate smoothed over
-        bands one grid step wide (default: the simulation's answer), the fitted one or two
-        Lorentzians (smooth; refused when the fit is), or the linear-noise spectrum
-    table : "inline" | "file"  The table as an array literal in the module, or the file form
-        ``noise_table("<stem>.tbl", "name")`` (most portable; the simulator resolves the
-        name relative to its working directory)
-    points_per_decade : int  Table density (about 20: noise_table interpolates linearly
-        between points) [1]
-
-    Returns
-    -------
-    (va_path, tbl_path) : Path, Path
-
-    Raises
-    ------
-    ValueError  for a count quantity (a count spectrum is not a current), a file without
-        ``current_psd``, or a refused fit.
-
-    Notes
-    -----
-    The module is a noise-only two-terminal element: ``I(p, n) <+ noise_table(...)`` with
-    (frequency [Hz], one-sided PSD [A^2/Hz]) pairs, ascending, unique, > 0, spanning the
-    band of the simulation (1/T_seg to the output Nyquist frequency).  It adds no DC
-    current.  The array literal is the LRM 2.4 form ``'{f1, S1, f2, S2, ...}``; older tools
-    want ``{...}`` -- or use ``table="file"``.
-    """
-    tab = spectrum_table(ds, quantity)
-    if not tab.is_current:
-        raise ValueError(
-            f"quantity {tab.quantity!r} is a count spectrum [counts^2/Hz], not a current: a "
-            "Verilog-A noise source needs A^2/Hz (add a [readout] to the scenario), or "
-            "export the counts as CSV"
-        )
-    if interpolation not in ("linear", "log"):
-        raise ValueError(f"interpolation must be 'linear' or 'log', got {interpolation!r}")
-    if table not in ("inline", "file"):
-        raise ValueError(f"table must be 'inline' or 'file', got {table!r}")
-    va_path = Path(path)
-    if va_path.suffix == ".tbl":
-        raise ValueError("give the .va file name; the .tbl is written next to it")
-    tbl_path = va_path.with_suffix(".tbl")
-    f, s, how = _verilog_table(tab, source, points_per_decade)
-    if not (np.all(np.diff(f) > 0) and np.all(f > 0) and np.all(np.isfinite(s))):
-        raise ValueError("internal: the table is not ascending, unique and finite")
-    name = _module_name(module_name, va_path.stem)
-    func = "noise_table" if interpolation == "linear" else "noise_table_log"
-
-    head = _header_lines(tab) + [
-        f"table: {f.size} (frequency [Hz], PSD [A^2/Hz]) pairs, {f[0]:.6g} .. {f[-1]:.6g} Hz",
-        f"source: {how}",
-        f"interpolation in the simulator: {func} (Accellera Verilog-AMS LRM 2.4, section "
-        + ("4.6.4.3, linear)" if func == "noise_table" else "4.6.4.4, log-log)"),
-    ]
-    tbl = ["# " + h for h in head] + ["# frequency_Hz  psd_A2_per_Hz"]
-    tbl += [f"{_fmt(a)} {_fmt(b)}" for a, b in zip(f, s)]
-    _atomic_write(tbl_path, "\n".join(tbl) + "\n")
-
+def _verilog_module(name: str, func: str, head: list[str], f: np.ndarray, s: np.ndarray,
+                    table: str, tbl_name: str) -> str:
     va = ["// " + h for h in head]
     va += [
         "// A noise-only element: connect it across the node whose current noise it models.",
@@ -519,15 +516,153 @@ def export_verilog_a(
     ]
     label = f'"{name}"'
     if table == "file":
-        va.append(f'        I(p, n) <+ {func}("{tbl_path.name}", {label});')
+        va.append(f'        I(p, n) <+ {func}("{tbl_name}", {label});')
     else:
         va.append(f"        I(p, n) <+ {func}('{{")
-        rows = [f"            {_fmt(a)}, {_fmt(b)}" for a, b in zip(f, s)]
-        va.append(",\n".join(rows))
+        va.append(",\n".join(f"            {_fmt(a)}, {_fmt(b)}" for a, b in zip(f, s)))
         va.append(f"        }}, {label});")
     va += ["    end", "endmodule", ""]
-    _atomic_write(va_path, "\n".join(va))
+    return "\n".join(va)
+
+
+def export_verilog_a(
+    ds: Any,
+    path: str | os.PathLike[str],
+    *,
+    quantity: str | None = None,
+    interpolation: Literal["linear", "log"] = "linear",
+    module_name: str | None = None,
+    source: Literal["mc", "fit", "lna"] | None = None,
+    band: tuple[float, float] = DEFAULT_BAND_HZ,
+    table: Literal["inline", "file"] = "inline",
+    points_per_decade: int = 20,
+) -> tuple[Path, Path]:
+    """Write a Verilog-A current noise source with the tabulated current spectrum.
+
+    Parameters
+    ----------
+    ds : xarray.Dataset or path  Output file contents (needs ``current_psd``)
+    path : path  The ``.va`` file; the table goes to ``<stem>.tbl`` next to it
+    quantity : str, optional  Must be "current" (the default where the file has it)
+    interpolation : "linear" | "log"  ``noise_table`` (LRM 2.4 section 4.6.4.3: linear in
+        f and S) or ``noise_table_log`` (section 4.6.4.4: linear in log f, log S)
+    module_name : str, optional  Default: the file stem, made a legal identifier
+    source : "fit" | "lna" | "mc", optional  The curve tabulated (see
+        :func:`grmc.export_curve.export_curve`; default fit where it passed, else lna)
+    band : (f1, f2)  Band of the table [Hz]
+    table : "inline" | "file"  The table as an array literal in the module, or the file form
+        ``noise_table("<stem>.tbl", "name")`` (most portable; the simulator resolves the
+        name relative to its working directory)
+    points_per_decade : int  Table density (about 20: noise_table interpolates linearly
+        between points) [1]
+
+    Returns
+    -------
+    (va_path, tbl_path) : Path, Path
+
+    Raises
+    ------
+    ValueError  for a count quantity (a count spectrum is not a current), a file without
+        ``current_psd``, a source the file cannot give or a band it cannot support
+        (:class:`grmc.export_curve.ExportOptionError`).
+
+    Notes
+    -----
+    The module is a noise-only two-terminal element: ``I(p, n) <+ noise_table(...)`` with
+    (frequency [Hz], one-sided PSD [A^2/Hz]) pairs, ascending, unique, > 0, spanning the
+    band.  It adds no DC current.  The array literal is the LRM 2.4 form
+    ``'{f1, S1, f2, S2, ...}``; older tools want ``{...}`` -- or use ``table="file"``.
+    """
+    if interpolation not in ("linear", "log"):
+        raise ValueError(f"interpolation must be 'linear' or 'log', got {interpolation!r}")
+    if table not in ("inline", "file"):
+        raise ValueError(f"table must be 'inline' or 'file', got {table!r}")
+    va_path = Path(path)
+    if va_path.suffix == ".tbl":
+        raise ValueError("give the .va file name; the .tbl is written next to it")
+    name = _module_name(module_name, va_path.stem)
+    ds, tab, cur = _prepare(ds, quantity, source, band, current_for="Verilog-A")
+    tbl_path = va_path.with_suffix(".tbl")
+    f = _log_grid(cur.band[0], cur.band[1], points_per_decade)
+    s = cur(f)
+    if not (np.all(np.diff(f) > 0) and np.all(f > 0) and np.all(np.isfinite(s))
+            and np.all(s >= 0)):
+        raise ValueError("internal: the table is not ascending, unique, finite and >= 0")
+    func = "noise_table" if interpolation == "linear" else "noise_table_log"
+    head = _header_lines(tab) + _curve_lines(ds, tab, cur) + [
+        f"table: {f.size} (frequency [Hz], PSD [A^2/Hz]) pairs, {f[0]:.6g} .. {f[-1]:.6g} Hz",
+        f"interpolation in the simulator: {func} (Accellera Verilog-AMS LRM 2.4, section "
+        + ("4.6.4.3, linear)" if func == "noise_table" else "4.6.4.4, log-log)"),
+    ]
+    tbl = ["# " + h for h in head] + ["# frequency_Hz  psd_A2_per_Hz"]
+    tbl += [f"{_fmt(a)} {_fmt(b)}" for a, b in zip(f, s)]
+    _atomic_write(tbl_path, "\n".join(tbl) + "\n")
+    _atomic_write(va_path, _verilog_module(name, func, head, f, s, table, tbl_path.name))
     return va_path, tbl_path
+
+
+def _rational_for_spice(cur: ExportCurve) -> tuple[RationalSpectrum, str]:
+    """The exported curve as white + Lorentzians, and a note on how it was made."""
+    if cur.rational is not None:
+        return cur.rational, "exact: the curve is itself white + Lorentzians"
+    if cur.source == "lna":
+        raise ExportOptionError("--source", "the linear-noise spectrum of this file is not a "
+                                "sum of Lorentzians (see above); use --source fit or mc")
+    f = _log_grid(cur.band[0], cur.band[1], 10)
+    spec = positive_fit(f, cur(f))
+    dev = float(np.max(np.abs(spec(f) / cur(f) - 1.0)))
+    return spec, (f"white + {spec.corners.size} Lorentzians with plateaus >= 0 fitted to the "
+                  f"curve by non-negative least squares; largest deviation from the curve over "
+                  f"the band {100 * dev:.3g} %")
+
+
+def export_spice(
+    ds: Any,
+    path: str | os.PathLike[str],
+    *,
+    quantity: str | None = None,
+    source: Literal["fit", "lna", "mc"] | None = None,
+    band: tuple[float, float] = DEFAULT_BAND_HZ,
+    name: str | None = None,
+) -> Path:
+    """Write a SPICE noise subcircuit ``.subckt NAME p n`` with the current spectrum.
+
+    Parameters
+    ----------
+    ds : xarray.Dataset or path  Output file contents (needs ``current_psd``)
+    path : path  Netlist file to write (e.g. ``pixel_noise.cir``; ``.include`` it)
+    quantity : str, optional  Must be "current"
+    source : "fit" | "lna" | "mc", optional  As for :func:`export_verilog_a`; ``mc`` is
+        represented by white + Lorentzians with plateaus >= 0 fitted to the curve
+    band : (f1, f2)  Band the header states and the deviations are measured over [Hz]
+    name : str, optional  Subcircuit name; default the file stem made an identifier
+
+    Returns
+    -------
+    Path
+
+    Raises
+    ------
+    ValueError  as :func:`export_verilog_a`.
+
+    Notes
+    -----
+    The circuit (:func:`grmc.spice.subcircuit`) reproduces its rational spectrum at every
+    frequency, so it also holds the tails beyond the band.  The header says the source, the
+    fit or theory, the band, the scenario title, the deviations and ``* subckt: NAME``.
+    """
+    path = Path(path)
+    name = spice_name(name if name is not None else path.stem)
+    ds, tab, cur = _prepare(ds, quantity, source, band, current_for="SPICE")
+    spec, note = _rational_for_spice(cur)
+    head = _header_lines(tab) + _curve_lines(ds, tab, cur) + [
+        f"circuit spectrum: {spec.describe()} [A^2/Hz]",
+        f"circuit spectrum against the curve: {note}",
+        "use: X1 node_p node_n " + name + " (a noise current between two nodes; a .noise "
+        "analysis sees it, a DC or transient analysis does not)",
+    ]
+    _atomic_write(path, subcircuit(spec, name, head))
+    return path
 
 
 # --------------------------------------------------------------------------------------------

@@ -67,6 +67,7 @@ from functools import cached_property
 
 import numpy as np
 
+from .materials import BOLTZMANN_EV_K
 from .scenario import Scenario, ScenarioError
 
 __all__ = [
@@ -81,8 +82,6 @@ __all__ = [
     "build_model",
 ]
 
-#: Boltzmann constant [eV/K] (CODATA 2018, exact).
-BOLTZMANN_EV_K = 8.617333262e-5
 #: Elementary charge [C] (CODATA 2018, exact).
 ELEMENTARY_CHARGE_C = 1.602176634e-19
 

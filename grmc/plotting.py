@@ -45,7 +45,7 @@ if TYPE_CHECKING:  # pragma: no cover
     from matplotlib.axes import Axes
 
 __all__ = ["plot_all", "plot_event_rates", "plot_histogram", "plot_psd", "plot_transient",
-           "plot_validity", "plot_population", "plot_worst_pixels"]
+           "plot_validity", "plot_population", "plot_worst_pixels", "plot_sweep_noise"]
 
 DPI = 150
 _PANEL = (6.4, 4.3)  # inches per panel
@@ -510,6 +510,64 @@ def plot_validity(ds: xr.Dataset, quantity: str = "mean", ax: Axes | None = None
     return ax
 
 
+def _swept_axis(ds: xr.Dataset) -> tuple[np.ndarray, str]:
+    """Values and label of the first swept key of a sweep file."""
+    key = str(ds.attrs.get("swept_keys", "")).split(" ")[0]
+    if key not in ds.coords:
+        return np.arange(ds.sizes["sweep"], dtype=float), "sweep point"
+    units = ds[key].attrs.get("units", "1")
+    label = "temperature (K)" if key == "material.temperature_K" else (
+        key if units == "1" else f"{key} ({units})")
+    return np.asarray(ds[key].values, dtype=float), label
+
+
+def plot_sweep_noise(ds: xr.Dataset, ax: Axes | None = None) -> Axes:
+    """Readout noise at the recorded frequencies against the swept key (e.g. temperature).
+
+    Per frequency of a sweep file: the exact or Monte Carlo current PSD (markers),
+    ``current_psd_lna`` (line), the photon term ``current_psd_photon`` (dashed) and twice it
+    (dotted), the background-limited G-R level (generation plus recombination of the
+    photocarriers) which the noise meets where the light's carriers dominate.
+
+    Parameters
+    ----------
+    ds : xarray.Dataset  A sweep file with ``current_psd_lna`` (dims sweep, frequency)
+    ax : matplotlib Axes, optional
+
+    Returns
+    -------
+    Axes
+    """
+    ax = _new_axes(ax)
+    if "current_psd_lna" not in ds:
+        return _note(ax, "this sweep has no readout noise (the scenario has no [readout])")
+    x, label = _swept_axis(ds)
+    order = np.argsort(x)
+    x = x[order]
+    for k, f in enumerate(np.asarray(ds["frequency"].values, dtype=float)):
+        color = f"C{k}"
+        at = f"{_si(f, 'Hz')}"
+        sim = np.asarray(ds["current_psd"].values[:, k], dtype=float)[order]
+        ax.plot(x, sim, "o", ms=4, color=color, label=f"readout noise at {at} (exact / MC)")
+        lna = np.asarray(ds["current_psd_lna"].values[:, k], dtype=float)[order]
+        ax.plot(x, lna, "-", lw=1.2, color=color, label=f"linear noise at {at}")
+        photon = np.asarray(ds["current_psd_photon"].values[:, k], dtype=float)[order]
+        if np.any(photon > 0):
+            ax.plot(x, np.where(photon > 0, photon, np.nan), "--", lw=1.2, color=color,
+                    alpha=0.8, label="photon (background) shot noise")
+            ax.plot(x, np.where(photon > 0, 2 * photon, np.nan), ":", lw=1.2, color=color,
+                    alpha=0.8, label="background limit, 2 x photon (gen. + rec.)")
+    ax.set_yscale("log")
+    ax.set_xlabel(label)
+    ax.set_ylabel("current noise (A$^2$/Hz)")
+    head = _title(ds)
+    sub = "readout noise against " + ("temperature" if label.startswith("temp") else label)
+    ax.set_title(f"{head}\n{sub}" if head else sub, fontsize=10)
+    ax.grid(True, which="both", alpha=0.3)
+    ax.legend(fontsize=7)
+    return ax
+
+
 # --------------------------------------------------------------------------------------------
 def _grid(n: int, size: tuple[float, float] = _PANEL) -> tuple[Any, list[Axes]]:
     from matplotlib.figure import Figure
@@ -555,7 +613,15 @@ def plot_all(path_nc: str | os.PathLike[str], outdir: str | os.PathLike[str] | N
         target = out / f"{stem}_validity.png"
         with atomic_target(target) as tmp:
             fig.savefig(tmp, dpi=DPI, format="png")
-        return [target]
+        written = [target]
+        if "current_psd_lna" in ds:  # readout noise against the swept key
+            fig, (ax,) = _grid(1, (7.2, 4.8))
+            plot_sweep_noise(ds, ax=ax)
+            target = out / f"{stem}_readout_noise.png"
+            with atomic_target(target) as tmp:
+                fig.savefig(tmp, dpi=DPI, format="png")
+            written.append(target)
+        return written
     if "sweep" in ds.dims:
         n_sweep = ds.sizes["sweep"]
         ds = ds.isel(sweep=0)

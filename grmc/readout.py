@@ -27,7 +27,7 @@ from .exact import ExactResult
 from .model import ELEMENTARY_CHARGE_C, Model
 
 __all__ = ["CurrentTheory", "counts_events", "current_gradient", "describe_current",
-           "exact_current", "lna_current"]
+           "exact_current", "lna_current", "photon_current_psd"]
 
 
 class CurrentTheory(NamedTuple):
@@ -122,3 +122,38 @@ def exact_current(model: Model, result: ExactResult) -> CurrentTheory:
     psd = (None if result.psd_matrix is None else
            spectra.current_psd_from_matrix(result.psd_matrix, a_e, a_h))
     return CurrentTheory(float(a_e * result.mean[0] + a_h * result.mean[1]), psd, 0.0)
+
+
+#: The channel whose own noise is the photon (background) shot noise.
+OPTICAL_CHANNEL = "optical generation"
+
+
+def photon_current_psd(model: Model, freqs: np.ndarray) -> np.ndarray:
+    """The part of the readout current's linear-noise spectrum the light's own shot noise drives.
+
+    Optical pairs are made at random (a Poisson stream of rate G V): this is the current
+    spectrum that stream alone gives through the pixel's response,
+    ``2 G V |g(f)|^2`` (:func:`grmc.continuum.channel_psd`).  Where the photocarriers'
+    recombination is the only other noise (a background-limited pixel) it adds as much
+    again, so the background-limited G-R level is twice this.  Zero without light.
+
+    Parameters
+    ----------
+    model : Model  With a ``[readout]``
+    freqs : ndarray (F,)  Frequencies [Hz]
+
+    Returns
+    -------
+    ndarray (F,)  [A^2/Hz]
+    """
+    names = [c.name for c in model.channels]
+    f = np.atleast_1d(np.asarray(freqs, dtype=float))
+    if OPTICAL_CHANNEL not in names:
+        return np.zeros(f.size)
+    if counts_events(model):  # q times the flux of crossings
+        flow = np.asarray(model.flow_weight, dtype=np.float64)
+        parts = ELEMENTARY_CHARGE_C**2 * continuum.channel_psd(model, f, flow=flow)
+    else:  # the drift current of the counts
+        gradient = current_gradient(model, continuum.steady_state(model))
+        parts = continuum.channel_psd(model, f, gradient)
+    return parts[:, names.index(OPTICAL_CHANNEL)]

@@ -46,6 +46,25 @@ def _fit_text(ds, name: str, kind_name: str, i: int) -> str:
     return ("two Lorentzians: " if kind == "two" else "") + ", ".join(parts)
 
 
+def _band_text(ds) -> str:
+    """The rms noise current over the readout band, its interval and the linear-noise value."""
+    band = ds["current_noise_rms"].attrs.get("band_Hz")
+    where = (f"{_g(band[0], 3)} .. {_g(band[1], 3)} Hz" if band is not None
+             and len(band) == 2 else "the readout band")
+    rms = float(ds["current_noise_rms"])
+    text = f"rms noise over {where}: "
+    if not math.isfinite(rms):
+        text += "not resolved by the run (band outside the simulated frequencies)"
+    else:
+        text += f"{_g(rms, 4)} A"
+        if "current_noise_rms_low" in ds:
+            text += (f" (95 %: {_g(float(ds['current_noise_rms_low']), 3)} .. "
+                     f"{_g(float(ds['current_noise_rms_high']), 3)} A)")
+    if "current_noise_rms_lna" in ds:
+        text += f", linear noise {_g(float(ds['current_noise_rms_lna']), 4)} A"
+    return text
+
+
 def format_run_table(ds) -> str:
     """Per species: Monte Carlo mean ± standard error against the continuum, variance
     against the linear-noise value, and a flag (``!``) where they differ by more than
@@ -128,6 +147,8 @@ def format_run_table(ds) -> str:
                              f"± {_g(fce, 2)} Hz")
             if str(ds["current_spectrum_kind"].values) == "unresolved":
                 lines.append("           no corner resolved in the current spectrum")
+        if "current_noise_rms" in ds:
+            lines.append("           " + _band_text(ds))
     for kind, unit in (("current", "A"), ("count", "counts")):
         if f"pixel_{kind}_noise" not in ds:
             continue

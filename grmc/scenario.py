@@ -18,6 +18,9 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Literal
 
+from . import materials as _materials
+from .materials import MaterialError, MaterialRecord
+
 __all__ = [
     "ScenarioError",
     "Material",
@@ -83,6 +86,10 @@ class Material:
     auger_hole_cm6_s : float  Auger coefficient C_p for e + h + h -> h [cm^6 s^-1]
     donors_cm3 : float  Ionized donor density [cm^-3]
     acceptors_cm3 : float  Ionized acceptor density [cm^-3]
+    name : str or None  Library material the values were resolved from (``grmc.materials``)
+    composition_x : float or None  Alloy composition x [1]
+    record : MaterialRecord or None  Every resolved value with its source (what
+        ``grmc check`` prints), with the warnings of laws used outside their range
     """
 
     temperature_K: float
@@ -92,6 +99,9 @@ class Material:
     auger_hole_cm6_s: float = 0.0
     donors_cm3: float = 0.0
     acceptors_cm3: float = 0.0
+    name: str | None = None
+    composition_x: float | None = None
+    record: MaterialRecord | None = field(default=None, compare=False, repr=False)
 
 
 @dataclass(frozen=True)
@@ -227,6 +237,8 @@ class Readout:
         events per second, so it carries the shot noise of collection as well.  The ohmic
         contacts keep the volume neutral: a carrier leaving through one contact is replaced
         by one entering through the other, so the counts do not change.
+    band_Hz : (float, float) or None  Readout band [f1, f2]: the output gets the rms noise
+        current over it (``current_noise_rms``) [Hz]
     """
 
     bias_V: float
@@ -234,6 +246,7 @@ class Readout:
     electron_mobility_cm2_Vs: float
     hole_mobility_cm2_Vs: float
     collection: Literal["mean", "events"] = "mean"
+    band_Hz: tuple[float, float] | None = None
 
     def transit_times(self) -> tuple[float, float]:
         """(t_tr,n, t_tr,p) = L^2 / (mu bias) [s]; inf where a mobility or the bias is 0."""
@@ -321,7 +334,7 @@ class Scenario:
 
 @dataclass(frozen=True)
 class _Key:
-    kind: str  # "float", "int", "str", "list3"
+    kind: str  # "float", "int", "str", "list3", "floatlist", "band"
     required: bool = False
     default: Any = None
     lo: float | None = None  # lower bound
@@ -341,13 +354,23 @@ _SECTIONS_ALLOWED = ("material", "volume", "traps", "light", "start", "run", "re
 
 _MATERIAL = {
     "temperature_K": _F(required=True, lo=0.0, lo_open=True),
-    "intrinsic_density_cm3": _F(required=True, lo=0.0, lo_open=True),
-    "radiative_cm3_s": _F(default=0.0, lo=0.0),
-    "auger_electron_cm6_s": _F(default=0.0, lo=0.0),
-    "auger_hole_cm6_s": _F(default=0.0, lo=0.0),
+    "name": _S(choices=_materials.NAMES),
+    "composition_x": _F(),
+    # required without a name; with one, these override the library value one by one
+    "intrinsic_density_cm3": _F(lo=0.0, lo_open=True),
+    "radiative_cm3_s": _F(lo=0.0),
+    "auger_electron_cm6_s": _F(lo=0.0),
+    "auger_hole_cm6_s": _F(lo=0.0),
+    "electron_thermal_velocity_cm_s": _F(lo=0.0, lo_open=True),
+    "hole_thermal_velocity_cm_s": _F(lo=0.0, lo_open=True),
     "donors_cm3": _F(default=0.0, lo=0.0),
     "acceptors_cm3": _F(default=0.0, lo=0.0),
 }
+#: ``[material]`` keys that are library parameters (the scenario's value wins).
+_MATERIAL_OVERRIDES = ("intrinsic_density_cm3", "radiative_cm3_s", "auger_electron_cm6_s",
+                       "auger_hole_cm6_s", "electron_thermal_velocity_cm_s",
+                       "hole_thermal_velocity_cm_s")
+_MOBILITIES = ("electron_mobility_cm2_Vs", "hole_mobility_cm2_Vs")
 _VOLUME = {
     "size_nm": _Key("list3", lo=0.0, lo_open=True),
     "volume_cm3": _F(lo=0.0, lo_open=True),
@@ -358,7 +381,9 @@ _TRAP = {
     "count": _I(lo=0),
     "density_cm3": _F(lo=0.0),
     "areal_density_cm2": _F(lo=0.0),
-    "energy_eV": _F(default=0.0),
+    "energy_eV": _F(),
+    "energy_below_conduction_eV": _F(),
+    "energy_above_valence_eV": _F(),
     "kind": _S(default="acceptor", choices=("acceptor", "donor")),
     "electron_capture_cm3_s": _F(lo=0.0),
     "hole_capture_cm3_s": _F(lo=0.0),
@@ -388,9 +413,10 @@ _POPULATION = {
 _READOUT = {
     "bias_V": _F(required=True),
     "length_cm": _F(required=True, lo=0.0, lo_open=True),
-    "electron_mobility_cm2_Vs": _F(required=True, lo=0.0),
-    "hole_mobility_cm2_Vs": _F(required=True, lo=0.0),
+    "electron_mobility_cm2_Vs": _F(lo=0.0),  # required without a [material] name
+    "hole_mobility_cm2_Vs": _F(lo=0.0),
     "collection": _S(default="mean", choices=("mean", "events")),
+    "band_Hz": _Key("band"),
 }
 _RESERVOIR = {
     "carrier": _S(required=True, choices=("electrons", "holes")),
@@ -457,6 +483,14 @@ def _check_value(src: str, section: str, key: str, value: Any, spec: _Key) -> An
                 fail(f"every value must be > 0, got {v!r}")
             out.append(float(v))
         return tuple(sorted(out))
+    elif spec.kind == "band":
+        if (not isinstance(value, list) or len(value) != 2
+                or any(isinstance(v, bool) or not isinstance(v, (int, float)) for v in value)):
+            fail(f"expected a list of two frequencies [f1, f2], got {value!r}")
+        f1, f2 = (float(v) for v in value)
+        if not (math.isfinite(f1) and math.isfinite(f2) and 0 < f1 < f2):
+            fail(f"must be two finite frequencies with 0 < f1 < f2, got {value!r}")
+        return (f1, f2)
     elif spec.kind == "list3":
         if not isinstance(value, list) or len(value) != 3:
             fail(f"expected a list of three edge lengths, got {value!r}")
@@ -523,7 +557,100 @@ def _parse_volume(src: str, table: Any) -> Volume:
     return Volume(volume_cm3=vals["volume_cm3"], surface_area_cm2=vals["surface_area_cm2"])
 
 
-def _parse_trap(src: str, index: int, table: Any, volume: Volume) -> Trap:
+def _parse_material(src: str, table: Any, readout: dict | None) -> Material:
+    """``[material]``: the scenario's values, the library's where a name is given.
+
+    ``readout`` holds the ``[readout]`` keys (or None): its mobilities are overrides too.
+    """
+    vals = _read_table(src, "material", table, _MATERIAL)
+    name = vals["name"]
+    if name is None and vals["intrinsic_density_cm3"] is None:
+        raise ScenarioError(src, "material", "intrinsic_density_cm3",
+                            "missing required key (or give a library material: name = "
+                            f"{' | '.join(repr(n) for n in _materials.NAMES)})")
+    overrides = {k: vals[k] for k in _MATERIAL_OVERRIDES}
+    if readout is not None:
+        overrides.update({k: readout[k] for k in _MOBILITIES})
+    band = ("radiative_cm3_s", "auger_electron_cm6_s", "auger_hole_cm6_s")
+    try:
+        record = _materials.resolve(vals["temperature_K"], name=name,
+                                    composition_x=vals["composition_x"], overrides=overrides,
+                                    defaults={k: 0.0 for k in band})
+    except MaterialError as exc:
+        raise ScenarioError(src, "material", exc.key, exc.message) from None
+    if readout is None:  # no readout uses the mobilities: no warnings about them
+        record = record.unused(_MOBILITIES)
+    return Material(
+        temperature_K=vals["temperature_K"],
+        intrinsic_density_cm3=record.value("intrinsic_density_cm3"),
+        radiative_cm3_s=record.value("radiative_cm3_s"),
+        auger_electron_cm6_s=record.value("auger_electron_cm6_s"),
+        auger_hole_cm6_s=record.value("auger_hole_cm6_s"),
+        donors_cm3=vals["donors_cm3"],
+        acceptors_cm3=vals["acceptors_cm3"],
+        name=name,
+        composition_x=record.composition_x,
+        record=record,
+    )
+
+
+def _parse_readout(src: str, vals: dict, material: Material) -> Readout:
+    """``[readout]`` with the mobilities the material resolved where the keys are absent."""
+    vals = dict(vals)
+    for key in _MOBILITIES:
+        if vals[key] is None:
+            vals[key] = material.record.value(key)
+        if vals[key] is None:
+            why = (f"the library has no {key.split('_')[0]} mobility of {material.name}; "
+                   if material.name else "")
+            raise ScenarioError(src, "readout", key, f"missing required key ({why}give it)")
+    return Readout(**vals)
+
+
+_ENERGY_KEYS = ("energy_eV", "energy_below_conduction_eV", "energy_above_valence_eV")
+
+
+def _trap_energy(src: str, section: str, vals: dict, material: Material) -> float:
+    """E_t - E_i [eV] from whichever of the three energy keys is given (default 0)."""
+    which = _exactly_one(src, section, vals, _ENERGY_KEYS, required=False)
+    if which is None:
+        return 0.0
+    if which == "energy_eV":
+        return vals["energy_eV"]
+    record = material.record
+    gap = record.value("band_gap_eV")
+    if gap is None:
+        raise ScenarioError(src, section, which, "a level given from a band edge needs the "
+                            "gap and the intrinsic level: give [material] name")
+    depth = vals[which]
+    if not 0.0 <= depth <= gap:
+        raise ScenarioError(src, section, which, f"must lie in the gap, within [0, {gap:.4g}] "
+                            f"eV for {material.name} at {material.temperature_K:g} K, got "
+                            f"{depth!r}")
+    if which == "energy_below_conduction_eV":
+        return record.trap_energy(below_conduction_eV=depth)
+    return record.trap_energy(above_valence_eV=depth)
+
+
+def _capture(src: str, section: str, vals: dict, material: Material, carrier: str) -> float:
+    """c = given coefficient, or sigma v_th (the trap's v_th, else the material's) [cm^3/s]."""
+    direct, xsec = f"{carrier}_capture_cm3_s", f"{carrier}_cross_section_cm2"
+    got = _exactly_one(src, section, vals, (direct, xsec))
+    if got == direct:
+        return vals[direct]
+    v_th = vals["thermal_velocity_cm_s"]
+    if v_th is None:
+        v_th = material.record.value(f"{carrier}_thermal_velocity_cm_s")
+    if v_th is None:
+        raise ScenarioError(
+            src, section, "thermal_velocity_cm_s",
+            f"{xsec} needs thermal_velocity_cm_s (c = sigma v_th), or a [material] name or "
+            f"{carrier}_thermal_velocity_cm_s that gives it",
+        )
+    return vals[xsec] * v_th
+
+
+def _parse_trap(src: str, index: int, table: Any, volume: Volume, material: Material) -> Trap:
     label = table.get("label") if isinstance(table, dict) else None
     section = f"traps.{label}" if isinstance(label, str) and label else f"traps[{index}]"
     vals = _read_table(src, section, table, _TRAP)
@@ -533,19 +660,7 @@ def _parse_trap(src: str, index: int, table: Any, volume: Volume) -> Trap:
             src, section, "areal_density_cm2",
             "needs a surface area: give [volume] size_nm or surface_area_cm2",
         )
-    caps = {}
-    for carrier in ("electron", "hole"):
-        direct, xsec = f"{carrier}_capture_cm3_s", f"{carrier}_cross_section_cm2"
-        got = _exactly_one(src, section, vals, (direct, xsec))
-        if got == direct:
-            caps[carrier] = vals[direct]
-        else:
-            if vals["thermal_velocity_cm_s"] is None:
-                raise ScenarioError(
-                    src, section, "thermal_velocity_cm_s",
-                    f"{xsec} needs thermal_velocity_cm_s (c = sigma v_th)",
-                )
-            caps[carrier] = vals[xsec] * vals["thermal_velocity_cm_s"]
+    caps = {c: _capture(src, section, vals, material, c) for c in ("electron", "hole")}
     if vals["thermal_velocity_cm_s"] is not None and all(
         vals[f"{c}_cross_section_cm2"] is None for c in ("electron", "hole")
     ):
@@ -563,7 +678,7 @@ def _parse_trap(src: str, index: int, table: Any, volume: Volume) -> Trap:
         count=vals["count"],
         density_cm3=vals["density_cm3"],
         areal_density_cm2=vals["areal_density_cm2"],
-        energy_eV=vals["energy_eV"],
+        energy_eV=_trap_energy(src, section, vals, material),
         kind=vals["kind"],
         electron_capture_cm3_s=caps["electron"],
         hole_capture_cm3_s=caps["hole"],
@@ -638,13 +753,16 @@ def parse_scenario(data: dict[str, Any], *, source: str = "<string>", text: str 
         raise ScenarioError(src, "material", "", "missing section")
     if "volume" not in data:
         raise ScenarioError(src, "volume", "", "missing section")
-    material = Material(**_read_table(src, "material", data["material"], _MATERIAL))
+    readout_vals = None
+    if "readout" in data:
+        readout_vals = _read_table(src, "readout", data["readout"], _READOUT)
+    material = _parse_material(src, data["material"], readout_vals)
     volume = _parse_volume(src, data["volume"])
 
     traps_raw = data.get("traps", [])
     if not isinstance(traps_raw, list):
         raise ScenarioError(src, "traps", "", "expected an array of tables: [[traps]]")
-    traps = tuple(_parse_trap(src, i, t, volume) for i, t in enumerate(traps_raw))
+    traps = tuple(_parse_trap(src, i, t, volume, material) for i, t in enumerate(traps_raw))
     seen: set[str] = set()
     for trap in traps:
         if trap.label in seen:
@@ -656,8 +774,8 @@ def parse_scenario(data: dict[str, Any], *, source: str = "<string>", text: str 
     start = Start(**_read_table(src, "start", data.get("start", {}), _START))
     run = RunSettings(**_read_table(src, "run", data.get("run", {}), _RUN))
     readout = None
-    if "readout" in data:
-        readout = Readout(**_read_table(src, "readout", data["readout"], _READOUT))
+    if readout_vals is not None:
+        readout = _parse_readout(src, readout_vals, material)
     reservoir = None
     if "reservoir" in data:
         reservoir = Reservoir(**_read_table(src, "reservoir", data["reservoir"], _RESERVOIR))
@@ -757,10 +875,10 @@ def set_key(data: dict[str, Any], dotted: str, value: Any, *, source: str = "<sw
             raise ScenarioError(source, f"traps.{label}", key, "unknown key" + _hint(key, _TRAP))
         for trap in data.get("traps", []):
             if trap.get("label") == label:
-                amount = ("count", "density_cm3", "areal_density_cm2")
-                if key in amount:  # the exactly-one-of rule: the swept form replaces the others
-                    for other in amount:
-                        trap.pop(other, None)
+                for group in (("count", "density_cm3", "areal_density_cm2"), _ENERGY_KEYS):
+                    if key in group:  # exactly one of: the swept form replaces the others
+                        for other in group:
+                            trap.pop(other, None)
                 trap[key] = value
                 return
         raise ScenarioError(source, f"traps.{label}", "label", "no trap level with this label")

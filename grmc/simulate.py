@@ -323,6 +323,12 @@ def run(
                                         k_total, band=band, batches=None if cgroups is None
                                         else cgroups - shot)
         data.update(_fit_vars([cfit], prefix="current_", species_dim=False))
+        if readout.band_Hz is not None:  # rms noise in the readout band, with the theory's
+            from .bandnoise import band_variables
+
+            data.update(band_variables(
+                freqs, cur_psd, readout.band_Hz, low=c_low, high=c_high,
+                lna=lambda f: lna_current(model0, f).psd))
 
     if model0.modulation is not None:
         data.update(_response_vars(acc, model0, readout is not None))

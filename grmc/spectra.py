@@ -22,7 +22,7 @@ segments_from_interval(psd, low, high, *, level=0.95) -> float
 choose_segments(trajectories, samples) -> int
 current_scale(readout) -> (a_e, a_h)
 current_psd_from_matrix(S_matrix, a_e, a_h) -> ndarray
-lorentzian(f, var, tau), telegraph_psd(f, tau_1, tau_0, delta=1.0),
+lorentzian(f, var, tau), telegraph_psd(f, tau_1, tau_0, delta=1.0) (from grmc.exact),
 photoconductor_gr_psd(f, current, gain, tau), shot_noise_psd(current)
 rectangular_window_factor(f, f_c, segment_duration) -> ndarray
 fit_lorentzian(freqs, psd, low, high, ...) -> LorentzianFit
@@ -40,6 +40,9 @@ from typing import Any, Literal
 import numpy as np
 import scipy.fft
 from scipy import optimize, special, stats
+
+from .exact import telegraph_psd
+from .model import ELEMENTARY_CHARGE_C
 
 __all__ = [
     "ELEMENTARY_CHARGE_C",
@@ -62,9 +65,6 @@ __all__ = [
     "telegraph_psd",
     "welch_interval",
 ]
-
-#: Elementary charge [C] (CODATA 2018, exact; the same value as grmc.model).
-ELEMENTARY_CHARGE_C = 1.602176634e-19
 
 #: p-value below which one Lorentzian is rejected in favour of two.
 P_REJECT = 1e-3
@@ -478,33 +478,6 @@ def lorentzian(f: np.ndarray | float, var: float, tau: float) -> np.ndarray:
     """
     f = np.asarray(f, dtype=float)
     return 4.0 * var * tau / (1.0 + (2.0 * np.pi * f * tau) ** 2)
-
-
-def telegraph_psd(
-    f: np.ndarray | float, tau_1: float, tau_0: float, delta: float = 1.0
-) -> np.ndarray:
-    """One-sided spectrum of a random telegraph signal.
-
-    Parameters
-    ----------
-    f : array  Frequency [Hz]
-    tau_1, tau_0 : float  Mean dwell times in the high and the low state [s]
-    delta : float  Step between the states [unit]
-
-    Returns
-    -------
-    S : ndarray  4 delta^2 / ((tau_1 + tau_0) ((1/tau_1 + 1/tau_0)^2 + (2 pi f)^2))
-        [unit^2/Hz]: a Lorentzian with 1/tau = 1/tau_1 + 1/tau_0 and variance
-        delta^2 tau_1 tau_0 / (tau_1 + tau_0)^2
-
-    References
-    ----------
-    S. Machlup, "Noise in semiconductors: spectrum of a two-parameter random signal",
-    J. Appl. Phys. 25, 341 (1954).
-    """
-    f = np.asarray(f, dtype=float)
-    rate = 1.0 / tau_1 + 1.0 / tau_0
-    return 4.0 * delta**2 / ((tau_1 + tau_0) * (rate**2 + (2.0 * np.pi * f) ** 2))
 
 
 def photoconductor_gr_psd(

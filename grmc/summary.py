@@ -54,6 +54,8 @@ def summarize(scenario: Scenario) -> dict:
         if trap.count is None:
             rounding(f"trap level '{trap.label}'", mean, got)
 
+    if mat.record is not None:
+        warnings.extend(f"[material] {w}" for w in mat.record.warnings)
     ss = continuum.steady_state(model)
     lna = continuum.lna(model)
     var = np.diag(lna.covariance)
@@ -90,6 +92,9 @@ def summarize(scenario: Scenario) -> dict:
         "title": scenario.title,
         "volume_cm3": vol,
         "surface_area_cm2": scenario.volume.surface_area_cm2,
+        "material_name": _material_name(scenario),
+        "material": _material(scenario),
+        "trap_energy_eV": {t.label: t.energy_eV for t in scenario.traps},
         "species": list(model.species),
         "counts": {
             "donors": counts.donors,
@@ -115,6 +120,30 @@ def summarize(scenario: Scenario) -> dict:
     }
 
 
+def _material_name(scenario: Scenario) -> str | None:
+    """``"HgCdTe (x = 0.3) at 77 K"``, None without a library material."""
+    mat = scenario.material
+    if mat.name is None:
+        return None
+    comp = "" if mat.composition_x is None else f" (x = {mat.composition_x:g})"
+    return f"{mat.name}{comp} at {mat.temperature_K:g} K"
+
+
+def _material(scenario: Scenario) -> dict:
+    """Each resolved material parameter: ``{key: {"value", "units", "from"}}``.
+
+    ``from`` is ``"scenario"`` for a value the scenario gave, else the law and its published
+    source (:mod:`grmc.materials`); the mobilities are those the ``[readout]`` uses.
+    """
+    mat = scenario.material
+    out = {} if mat.record is None else mat.record.as_json()
+    if scenario.readout is not None:  # what the readout finally uses (its keys win)
+        for key in ("electron_mobility_cm2_Vs", "hole_mobility_cm2_Vs"):
+            if key in out:
+                out[key]["value"] = getattr(scenario.readout, key)
+    return out
+
+
 def _current(model) -> float | None:
     """Continuum mean readout current [A], None without a [readout]."""
     if model.scenario.readout is None:
@@ -130,6 +159,17 @@ def _eng(x: float) -> str:
     return f"{x:.4g}"
 
 
+def _material_lines(material: dict, name: str | None) -> list[str]:
+    """One line per resolved material value with its units and source."""
+    if not material:
+        return []
+    lines = ["", f"  material {name or '(values from the scenario)'}",
+             "  parameter                           value  units         from"]
+    for key, v in material.items():
+        lines.append(f"  {key:<31}{_eng(v['value']):>11}  {v['units']:<13} {v['from']}")
+    return lines
+
+
 def format_summary(info: dict) -> str:
     """A human-readable table of :func:`summarize`'s result."""
     lines = [f"{info['title']}", f"  volume            {_eng(info['volume_cm3'])} cm^3"]
@@ -138,8 +178,11 @@ def format_summary(info: dict) -> str:
     lines.append(f"  acceptors         {c['acceptors']}")
     for k, v in c.items():
         if k.startswith("T_"):
-            lines.append(f"  traps {k[2:]:<11} {v}")
+            energy = info.get("trap_energy_eV", {}).get(k[2:])
+            where = "" if energy is None else f"  (E_t - E_i = {energy:+.4g} eV)"
+            lines.append(f"  traps {k[2:]:<11} {v}{where}")
     lines.append(f"  conserved charge  {info['conserved_charge']}  (N_e - N_h + sum M_k)")
+    lines.extend(_material_lines(info.get("material") or {}, info.get("material_name")))
     res = info.get("reservoir")
     if res:
         lines.append(f"  reservoir         {res['carrier']} at {_eng(res['density_cm3'])} cm^-3, "

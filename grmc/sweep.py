@@ -10,6 +10,14 @@ address); the client gathers results as they complete, saves every finished poin
 Point ``i`` is seeded from ``(seed, i)`` only, so results do not depend on where or in which
 order points ran.
 
+Where the scenario has a ``[readout]``, each point also holds the readout current's noise at
+the chosen frequencies (``--frequency``, default :data:`DEFAULT_NOISE_FREQUENCIES`): exact
+or Monte Carlo (``current_psd``), linear noise (``current_psd_lna``) and the part of it the
+light's own shot noise drives (``current_psd_photon``, :func:`grmc.readout.photon_current_psd`).
+Each point records the intrinsic density and, with a library material, the band gap it used:
+a swept ``material.temperature_K`` re-resolves every library value at the point's
+temperature, while the keys the scenario gives keep their values.
+
 For each species the sweep file holds the relative deviation of the exact/Monte Carlo mean,
 variance and relaxation time from the continuum and linear-noise answers, with uncertainties:
 
@@ -44,6 +52,8 @@ __all__ = ["Vary", "parse_vary", "sweep_points", "point_scenario", "evaluate_poi
 EXACT_STATE_LIMIT = 200_000
 #: A relative deviation of this size marks where the continuum answer fails.
 DEVIATION_THRESHOLD = 0.10
+#: Frequencies of the readout noise recorded per point unless ``--frequency`` is given [Hz].
+DEFAULT_NOISE_FREQUENCIES = (1.0e3,)
 
 
 @dataclass(frozen=True)
@@ -134,15 +144,17 @@ def _lna_tau(model) -> tuple[np.ndarray, np.ndarray, float]:
     return var, tau, f0
 
 
-def evaluate_point(scenario: Scenario, index: int, *, exact_limit: int = EXACT_STATE_LIMIT
-                   ) -> dict:
+def evaluate_point(scenario: Scenario, index: int, *, exact_limit: int = EXACT_STATE_LIMIT,
+                   noise_frequencies: tuple[float, ...] = DEFAULT_NOISE_FREQUENCIES) -> dict:
     """Solve one sweep point: exact where small, Monte Carlo otherwise.
 
     Returns
     -------
     dict of JSON-ready values: ``index``, ``method``, ``species`` and per species lists
     ``mean``, ``mean_err``, ``var``, ``var_err``, ``tau``, ``tau_err``, ``continuum``,
-    ``var_lna``, ``tau_lna``.
+    ``var_lna``, ``tau_lna``; ``intrinsic_density`` [cm^-3] and ``band_gap`` [eV] (NaN
+    without a library material); with a ``[readout]`` the lists ``current_psd``,
+    ``current_psd_lna`` and ``current_psd_photon`` at ``noise_frequencies`` [A^2/Hz].
     """
     from . import continuum, exact
     from .model import build_model
@@ -150,9 +162,15 @@ def evaluate_point(scenario: Scenario, index: int, *, exact_limit: int = EXACT_S
     model = build_model(scenario)
     ss = continuum.steady_state(model)
     var_lna, tau_lna, f0 = _lna_tau(model)
+    noise_f = np.asarray(noise_frequencies, dtype=float)
     out: dict[str, Any] = {"index": index, "species": list(model.species)}
+    current = None
     try:
-        res = exact.solve(model, freqs=np.array([f0]), max_states=exact_limit)
+        res = exact.solve(model, freqs=np.concatenate([[f0], noise_f]), max_states=exact_limit)
+        if scenario.readout is not None:
+            from .readout import exact_current
+
+            current = exact_current(model, res).psd[1:]
         s0 = res.psd[:, 0]
         with np.errstate(divide="ignore", invalid="ignore"):
             tau = np.where(res.var > 0, s0 / (4 * res.var), np.nan)
@@ -178,20 +196,43 @@ def evaluate_point(scenario: Scenario, index: int, *, exact_limit: int = EXACT_S
         out.update(method="monte carlo", seed=seed, trajectories=int(ds.attrs["trajectories"]),
                    mean=ds["stationary_mean"].values, mean_err=ds["stationary_mean_stderr"].values,
                    var=var, var_err=ds["stationary_var_stderr"].values, tau=tau, tau_err=tau_err)
+        if "current_psd" in ds:
+            current = _log_interp(noise_f, ds["frequency"].values, ds["current_psd"].values)
     out.update(continuum=ss, var_lna=var_lna, tau_lna=tau_lna)
+    mat = scenario.material
+    gap = None if mat.record is None else mat.record.value("band_gap_eV")
+    out.update(intrinsic_density=mat.intrinsic_density_cm3,
+               band_gap=float("nan") if gap is None else gap)
+    if scenario.readout is not None:
+        from .readout import lna_current, photon_current_psd
+
+        out.update(current_psd=current, current_psd_lna=lna_current(model, noise_f).psd,
+                   current_psd_photon=photon_current_psd(model, noise_f))
     return {k: (np.asarray(v, dtype=float).tolist() if isinstance(v, np.ndarray) else v)
             for k, v in out.items()}
 
 
-def _evaluate_task(scenario: Scenario, assignment: dict, index: int) -> dict:
+def _log_interp(f: np.ndarray, freqs: np.ndarray, psd: np.ndarray) -> np.ndarray:
+    """A positive spectrum at ``f``, interpolated in log-log; NaN outside its frequencies."""
+    ok = (freqs > 0) & (psd > 0)
+    lf, lp = np.log(freqs[ok]), np.log(psd[ok])
+    out = np.exp(np.interp(np.log(f), lf, lp))
+    return np.where((f >= freqs[ok].min()) & (f <= freqs[ok].max()), out, np.nan)
+
+
+def _evaluate_task(scenario: Scenario, assignment: dict, index: int,
+                   noise_frequencies: tuple[float, ...] = DEFAULT_NOISE_FREQUENCIES) -> dict:
     """One Dask task: build the point's scenario and solve it."""
-    res = evaluate_point(point_scenario(scenario, assignment), index)
+    res = evaluate_point(point_scenario(scenario, assignment), index,
+                         noise_frequencies=noise_frequencies)
     res["assignment"] = assignment
     return res
 
 
-def _signature(scenario: Scenario, varies: list[Vary]) -> str:
+def _signature(scenario: Scenario, varies: list[Vary], noise_f: tuple[float, ...]) -> str:
     text = scenario.text + "\n" + json.dumps([dataclasses.asdict(v) for v in varies])
+    if noise_f != DEFAULT_NOISE_FREQUENCIES:  # (the default keeps older signatures)
+        text += "\n" + json.dumps(noise_f)
     return hashlib.sha256(text.encode()).hexdigest()[:16]
 
 
@@ -205,7 +246,8 @@ def _parts_dir(out: Path) -> Path:
 
 def run_sweep(scenario: Scenario, varies: list[Vary], out: str | Path, *,
               scheduler: str | None = None, resume: bool = False, workers: int | None = None,
-              command: str | None = None, max_points: int | None = None) -> Path:
+              command: str | None = None, max_points: int | None = None,
+              noise_frequencies: tuple[float, ...] | None = None) -> Path:
     """Run every sweep point on Dask and write the stacked file.
 
     Parameters
@@ -220,6 +262,8 @@ def run_sweep(scenario: Scenario, varies: list[Vary], out: str | Path, *,
     command : str, optional  Command line recorded in ``history``
     max_points : int, optional  Stop after this many new points (leaves the sweep
         unfinished, as an interruption would; used to test ``resume``)
+    noise_frequencies : tuple of float, optional  Frequencies of the readout noise recorded
+        per point (default :data:`DEFAULT_NOISE_FREQUENCIES`) [Hz]
 
     Returns
     -------
@@ -233,12 +277,13 @@ def run_sweep(scenario: Scenario, varies: list[Vary], out: str | Path, *,
     from .engine.ensemble import default_workers
 
     out = Path(out)
+    noise_f = tuple(sorted(noise_frequencies or DEFAULT_NOISE_FREQUENCIES))
     points = sweep_points(varies)
     # validate every point before anything runs (bad keys and values exit 2, nothing written)
     for assignment in points:
         point_scenario(scenario, assignment)
     parts = _parts_dir(out)
-    sig = _signature(scenario, varies)
+    sig = _signature(scenario, varies, noise_f)
     manifest = parts / "manifest.json"
     done: dict[int, dict] = {}
     if parts.exists():
@@ -267,12 +312,15 @@ def run_sweep(scenario: Scenario, varies: list[Vary], out: str | Path, *,
             client = Client(scheduler)
         else:
             n = workers or default_workers()
+            # no dashboard; the scheduler's small HTTP server listens on a free local port
+            # (its default, 8787, may be taken by another cluster on the machine)
             cluster = LocalCluster(n_workers=min(n, len(todo)), threads_per_worker=1,
-                                   dashboard_address=None, processes=True)
+                                   dashboard_address=None, processes=True,
+                                   scheduler_kwargs={"dashboard_address": "127.0.0.1:0"})
             client = Client(cluster)
         try:
-            futures = [client.submit(_evaluate_task, scenario, points[i], i, pure=False)
-                       for i in todo]
+            futures = [client.submit(_evaluate_task, scenario, points[i], i, noise_f,
+                                     pure=False) for i in todo]
             for fut in as_completed(futures):
                 res = fut.result()
                 _atomic_json(parts / f"point_{res['index']:05d}.json", res)
@@ -283,7 +331,8 @@ def run_sweep(scenario: Scenario, varies: list[Vary], out: str | Path, *,
                 cluster.close()
     if len(done) < len(points):
         return None
-    ds = assemble(scenario, varies, [done[i] for i in range(len(points))], command=command)
+    ds = assemble(scenario, varies, [done[i] for i in range(len(points))], command=command,
+                  noise_frequencies=noise_f)
     save(ds, out)
     for f in parts.iterdir():  # including temporary files an interruption left behind
         f.unlink()
@@ -292,7 +341,8 @@ def run_sweep(scenario: Scenario, varies: list[Vary], out: str | Path, *,
 
 
 def assemble(scenario: Scenario, varies: list[Vary], results: list[dict], *,
-             command: str | None = None):
+             command: str | None = None,
+             noise_frequencies: tuple[float, ...] = DEFAULT_NOISE_FREQUENCIES):
     """Stack point results along ``sweep`` and add the relative deviations."""
     import xarray as xr
 
@@ -332,10 +382,20 @@ def assemble(scenario: Scenario, varies: list[Vary], results: list[dict], *,
         "deviation_tau_stderr": (sw, dev["tau"][1]),
         "method": (("sweep",), np.array([r["method"] for r in results], dtype=object)),
     }
+    variables["intrinsic_density"] = (("sweep",), stack("intrinsic_density"))
+    gaps = stack("band_gap")
+    if np.isfinite(gaps).any():  # a library material
+        variables["band_gap"] = (("sweep",), gaps)
     coords = {
         "sweep": ("sweep", np.arange(len(results), dtype=np.int64)),
         "species": ("species", np.array(species, dtype=object)),
     }
+    if "current_psd_lna" in results[0]:
+        coords["frequency"] = ("frequency", np.asarray(noise_frequencies, dtype=float))
+        for name in ("current_psd", "current_psd_lna", "current_psd_photon"):
+            values = [np.full(len(noise_frequencies), np.nan) if r[name] is None else r[name]
+                      for r in results]
+            variables[name] = (("sweep", "frequency"), np.array(values, dtype=float))
     for v in varies:
         coords[v.key] = ("sweep", np.array([r["assignment"][v.key] for r in results]))
     ds = xr.Dataset(variables, coords=coords)

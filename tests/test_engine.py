@@ -217,16 +217,40 @@ hole_capture_cm3_s = 5.0e-9
     _same(r, oracle.simulate(*arr, rng_state=rng.stream_state(6, 0), **kw))
 
 
-def test_contract_function_equals_wrapper(small):
-    """run_trajectory (the kernel contract: plain arrays, caller's outputs) and simulate
-    (validating wrapper) run the same kernel: identical outputs for one seed."""
+def test_compiled_entry_equals_wrapper(small):
+    """run (the one compiled entry: records built once, the caller's arrays, no checks) and
+    simulate (validating wrapper) run the same loop: identical outputs for one seed, with
+    and without the options record switched on."""
     m, arr, x0 = small
-    out = kernels.allocate_outputs(m.n_species, m.n_channels, 8, 3)
-    st = rng.stream_state(8, 0)
-    n = kernels.run_trajectory(x0, *arr, st, 1e-8, np.array([1, 1, 0]), 1e-6, 8, 3, *out)
-    r = kernels.simulate(*arr, x0=x0, rng_state=rng.stream_state(8, 0), settle_s=1e-8,
-                         excess=[1, 1, 0], duration_s=1e-6, n_samples=8, oversample=3)
-    _same(kernels.TrajectoryResult(*out, n, st.copy()), r)
+    tables = kernels.build_tables(*arr)
+    kw = {"x0": x0, "settle_s": 1e-8, "excess": [1, 1, 0], "duration_s": 1e-6,
+          "n_samples": 8, "oversample": 3}
+    for fw in (None, m.stoich[:, 0]):
+        out = kernels.allocate_outputs(m.n_species, m.n_channels, 8, 3, flows=fw is not None)
+        st = rng.stream_state(8, 0)
+        n = kernels.run(tables, kernels.make_options(None, fw),
+                        kernels.allocate_work(tables, m.n_species), out, x0,
+                        np.array([1, 1, 0]), st, 1e-8, 1e-6, np.int64(8), np.int64(3))
+        r = kernels.simulate(*arr, rng_state=rng.stream_state(8, 0), flow_weight=fw, **kw)
+        _same(kernels.TrajectoryResult(*out[:6], n, st.copy(), out.flows), r)
+
+
+def test_options_record_has_none_values_and_one_compiled_loop(small):
+    """The options record: without options its "none" values (no channel has index
+    NO_CHANNEL, no flow weights); with and without options the records have the same numba
+    types, so the one compiled entry has exactly one specialization (a second one would
+    mean a second compilation of the whole loop)."""
+    from grmc.engine import tables
+
+    m, arr, x0 = small
+    none = kernels.make_options(None, None)
+    assert none.mod_channel == tables.NO_CHANNEL and none.mod_channel >= m.n_channels
+    assert none.flow_weight.shape == (0,)
+    kw = {"x0": x0, "duration_s": 1e-7, "n_samples": 4}
+    kernels.simulate(*arr, rng_state=rng.stream_state(1, 0), **kw)
+    kernels.simulate(*arr, rng_state=rng.stream_state(1, 0), flow_weight=m.stoich[:, 0],
+                     modulation=(2, kernels.SQUARE, 1.0e6, 0.5, 0.0), **kw)
+    assert len(kernels.run.signatures) == 1
 
 
 def test_kernel_equals_oracle_through_rounding_guard_region():
@@ -539,7 +563,7 @@ arr = (np.array([[1, 1]]), np.array([1.0e3]), np.full((1, 3), -1), np.zeros((1, 
 r = kernels.simulate(*arr, x0=[0, 0], rng_state=rng.stream_state(1, 0), duration_s=1.0,
                      n_samples=4)
 assert r.n_events > 500
-print(_jit.CACHE_ENABLED, _jit.CACHE_DIR, sum(kernels.run_prepared._cache_hits.values()))
+print(_jit.CACHE_ENABLED, _jit.CACHE_DIR, sum(kernels.run._cache_hits.values()))
 """
 
 

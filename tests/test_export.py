@@ -68,19 +68,29 @@ def read_csv(path):
     lines = path.read_text().splitlines()
     header = [ln for ln in lines if ln.startswith("#")]
     # (genfromtxt would take the first comment line for the names: skip the header)
-    table = np.genfromtxt(path, delimiter=",", skip_header=len(header), names=True)
+    table = np.genfromtxt(path, delimiter=",", skip_header=len(header), names=True,
+                          dtype=None, encoding="utf-8")
     return header, table
+
+
+#: the synthetic spectra's own band: no scenario to extend them from (export_curve refuses a
+#: wider band, see test_band_beyond_the_file_is_refused)
+BAND = (1e5, 1024e5)
 
 
 # --------------------------------------------------------------------------------------------
 def test_csv_current_default(tmp_path):
     ds = make_dataset()
-    out = export.export_csv(ds, tmp_path / "spec.csv")
+    out = export.export_csv(ds, tmp_path / "spec.csv", band=BAND)
     header, tab = read_csv(out)
     text = "\n".join(header)
     assert "test bar" in text and "A^2/Hz" in text and "one-sided" in text
     assert "Welch" in text and "K = 32" in text and "1.5 V" in text
-    assert tab.dtype.names == ("frequency_Hz", "psd", "psd_low", "psd_high", "psd_lna")
+    assert tab.dtype.names == ("frequency_Hz", "psd", "psd_low", "psd_high", "psd_lna",
+                               "psd_export", "region")
+    assert set(tab["region"]) == {"simulated"}
+    # no fit and no usable scenario text: the source is the Monte Carlo estimate itself
+    assert "source: mc" in text and "largest deviation" in text
     np.testing.assert_allclose(tab["frequency_Hz"], ds.frequency, rtol=1e-10)
     np.testing.assert_allclose(tab["psd"], ds.current_psd, rtol=1e-10)
     np.testing.assert_allclose(tab["psd_lna"], ds.current_psd_lna, rtol=1e-10)
@@ -94,12 +104,12 @@ def test_csv_current_default(tmp_path):
 def test_csv_species_and_errors(tmp_path):
     ds = make_dataset(current=False)
     del ds.attrs["scenario_toml"]  # bias absent: accepted, just not reported
-    out = export.export_csv(ds, tmp_path / "e.csv")  # default: electrons
+    out = export.export_csv(ds, tmp_path / "e.csv", band=BAND)  # default: electrons
     header, tab = read_csv(out)
     assert any("counts^2/Hz" in h for h in header)
     assert not any("bias" in h for h in header)
     np.testing.assert_allclose(tab["psd"], ds.psd.sel(species="electrons"), rtol=1e-10)
-    out = export.export_csv(ds, tmp_path / "t.csv", quantity="trapped:deep")
+    out = export.export_csv(ds, tmp_path / "t.csv", quantity="trapped:deep", band=BAND)
     _, tab = read_csv(out)
     np.testing.assert_allclose(tab["psd_high"], ds.psd_high.sel(species="trapped:deep"),
                                rtol=1e-10)
@@ -108,7 +118,7 @@ def test_csv_species_and_errors(tmp_path):
     with pytest.raises(ValueError, match="no current_psd"):
         export.export_csv(ds, tmp_path / "x.csv", quantity="current")
     ds.attrs["readout_bias_V"] = 0.25
-    header, _ = read_csv(export.export_csv(ds, tmp_path / "b.csv"))
+    header, _ = read_csv(export.export_csv(ds, tmp_path / "b.csv", band=BAND))
     assert any("0.25 V" in h for h in header)
     # a sweep file must be reduced to one point first
     swept = xr.concat([ds, ds], dim="sweep")
@@ -122,7 +132,7 @@ def test_csv_species_and_errors(tmp_path):
 def test_verilog_a_inline_round_trip(tmp_path, interpolation, func):
     ds = make_dataset()
     va, tbl = export.export_verilog_a(ds, tmp_path / "bar noise.va",
-                                      interpolation=interpolation)
+                                      interpolation=interpolation, band=BAND)
     text = va.read_text()
     assert '`include "disciplines.vams"' in text
     assert re.search(r"^module bar_noise\(p, n\);$", text, re.MULTILINE)
@@ -148,37 +158,69 @@ def test_verilog_a_inline_round_trip(tmp_path, interpolation, func):
     assert "one-sided" in tbl_text and "A^2/Hz" in tbl_text and "1.5 V" in tbl_text
 
 
-def test_verilog_a_file_form_and_sources(tmp_path):
-    ds = make_dataset()
-    va, _tbl = export.export_verilog_a(ds, tmp_path / "n.va", table="file", source="lna",
-                                      module_name="my_src")
-    text = va.read_text()
-    assert 'I(p, n) <+ noise_table("n.tbl", "my_src");' in text
-    f, s = export.read_noise_table(va)  # follows the file name
-    # source="lna": the linear-noise Lorentzian (van Vliet), interpolated linearly in
-    # (x, y) = (log f, log S) between the file's frequencies.  Interpolation error bound
-    # |dy| <= h^2/8 max|y''| on each interval of width h (the textbook bound for linear
-    # interpolation); for y = -log(1 + u^2), u = f/f_c: y'' = -4 u^2 / (1 + u^2)^2.
-    a = ds.current_psd_lna.values[0] / ds.psd_lna.values[0, 0]
-    exact = a * spectra.lorentzian(f, VAR["electrons"], TAU["electrons"])
-    fd = ds.frequency.values
-    f_c = 1 / (2 * math.pi * TAU["electrons"])
-    j = np.clip(np.searchsorted(fd, f, side="right") - 1, 0, fd.size - 2)
-    h = np.log(fd[j + 1] / fd[j])
-    u2 = (np.linspace(fd[j], fd[j + 1], 50) / f_c) ** 2
-    bound = h**2 / 8 * np.max(4 * u2 / (1 + u2) ** 2, axis=0) + 1e-9
-    assert np.all(np.abs(np.log(s / exact)) <= bound)
-    # (the error is real -- up to 0.7 % in the lowest decade, where the file's grid j/T is
-    # coarse in log f -- and the bound covers it)
-    assert np.max(np.abs(np.log(s / exact))) > 1e-3
-    # source="fit": the fitted Lorentzian, consistent with analyse_spectrum
-    va2, _ = export.export_verilog_a(ds, tmp_path / "fit.va", source="fit")
-    f2, s2 = export.read_noise_table(va2)
+def with_stored_fit(ds: xr.Dataset) -> tuple[xr.Dataset, spectra.LorentzianFit]:
+    """The Dataset with the current's Lorentzian fit stored as grmc run stores it."""
     lo, hi = spectra.welch_interval(ds.current_psd.values, K)
     res = spectra.analyse_spectrum(ds.frequency.values, ds.current_psd.values, lo, hi, K)
     assert res.kind == "one"
     (c,) = res.components
+    ds = ds.copy()
+    ds["current_spectrum_kind"] = ((), "one")
+    ds["current_plateau"] = (("component",), [c.S0, np.nan])
+    ds["current_corner_frequency"] = (("component",), [c.f_c, np.nan])
+    return ds, c
+
+
+def test_verilog_a_file_form_and_sources(tmp_path):
+    ds = make_dataset()
+    va, _tbl = export.export_verilog_a(ds, tmp_path / "n.va", table="file", source="mc",
+                                      band=BAND, module_name="my_src")
+    text = va.read_text()
+    assert 'I(p, n) <+ noise_table("n.tbl", "my_src");' in text
+    f, s = export.read_noise_table(va)  # follows the file name
+    f_ex, s_ex = export.resample_spectrum(ds.frequency.values, ds.current_psd.values)
+    np.testing.assert_allclose(s, s_ex, rtol=1e-10)
+    # source="fit": the stored Lorentzian, over the default band 1 Hz .. 100 GHz (its tails
+    # extend the simulated band), consistent with analyse_spectrum
+    fitted, c = with_stored_fit(ds)
+    va2, _ = export.export_verilog_a(fitted, tmp_path / "fit.va")  # default: the fit
+    f2, s2 = export.read_noise_table(va2)
+    assert f2[0] == pytest.approx(1.0) and f2[-1] == pytest.approx(1e11)
     np.testing.assert_allclose(s2, c.S0 / (1 + (f2 / c.f_c) ** 2), rtol=1e-9)
+    head = va2.read_text()
+    assert "source: fit" in head and "band: 1 .. 1e+11 Hz" in head
+    # LRM 2.4 section 4.6.4.3: (frequency, power) pairs, frequencies ascending and unique,
+    # power >= 0, in Hz and A^2/Hz (the header says so); about 20 points per decade
+    assert np.all(np.diff(f2) > 0) and np.all(s2 >= 0) and f2.size == 11 * 20 + 1
+    assert "frequency [Hz], PSD [A^2/Hz]" in head
+    # the synthetic file has no scenario to recompute the linear noise from
+    with pytest.raises(ValueError, match="--source"):
+        export.export_verilog_a(ds, tmp_path / "l.va", source="lna")
+
+
+def test_band_beyond_the_file_is_refused(tmp_path):
+    ds = make_dataset()
+    # neither a fit that passed nor a scenario text: nothing to extend the estimate with
+    with pytest.raises(ValueError, match="--band.*outside the simulated band"):
+        export.export_csv(ds, tmp_path / "x.csv")
+    with pytest.raises(ValueError, match="--band"):
+        export.export_csv(ds, tmp_path / "x.csv", band=(1.0, 1e13))
+    with pytest.raises(ValueError, match="--source"):
+        export.export_csv(ds, tmp_path / "x.csv", source="fit", band=BAND)
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_csv_extended_rows(tmp_path):
+    # the fit's tails outside the simulated band, rows marked extended, estimate nan there
+    fitted, c = with_stored_fit(make_dataset())
+    _, tab = read_csv(export.export_csv(fitted, tmp_path / "w.csv", band=(1e3, 1e10)))
+    ext = tab["region"] == "extended"
+    sim = tab["region"] == "simulated"
+    assert ext.sum() == 40 + 40 and sim.sum() == fitted.frequency.size
+    assert np.all(np.isnan(tab["psd"][ext])) and np.all(np.isfinite(tab["psd"][sim]))
+    assert np.all(np.diff(tab["frequency_Hz"]) > 0)
+    np.testing.assert_allclose(tab["psd_export"],
+                               c.S0 / (1 + (tab["frequency_Hz"] / c.f_c) ** 2), rtol=1e-9)
 
 
 def test_mc_resampling_reproduces_smooth_spectrum():
@@ -214,7 +256,7 @@ def test_atomic_replacement(tmp_path):
     # an existing file is replaced as a whole; no temporary files remain
     target = tmp_path / "spec.csv"
     target.write_text("old contents that are longer than nothing\n" * 1000)
-    export.export_csv(make_dataset(), target)
+    export.export_csv(make_dataset(), target, band=BAND)
     assert target.read_text().startswith("# grmc noise spectrum")
     assert sorted(p.name for p in tmp_path.iterdir()) == ["spec.csv"]
 

@@ -108,7 +108,8 @@ def test_sweep_attaches_to_a_running_scheduler(tmp_path):
     scen = grmc.load_scenario(text=PAIR)
     vary = [parse_vary("volume.volume_cm3=1e-10:2e-10:2")]
     with LocalCluster(n_workers=1, threads_per_worker=1, processes=False,
-                      dashboard_address=None) as cluster:
+                      dashboard_address=None,  # HTTP on a free port: 8787 may be taken
+                      scheduler_kwargs={"dashboard_address": "127.0.0.1:0"}) as cluster:
         remote = run_sweep(scen, vary, tmp_path / "remote.nc", scheduler=cluster.scheduler_address)
     local = run_sweep(scen, vary, tmp_path / "local.nc", workers=1)
     a, b = load(remote), load(local)

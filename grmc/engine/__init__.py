@@ -4,9 +4,13 @@ Importing this package is cheap and imports no numba; the compiled parts are in 
 that the caller imports when it needs them:
 
 ``grmc.engine.kernels``
-    ``simulate`` (public wrapper: validates, allocates, returns a ``TrajectoryResult``),
-    ``run_trajectory`` (the jitted kernel: plain arrays in, arrays out) and ``kernel_arrays``
-    (the plain arrays of a ``Model``).
+    The one entry: ``simulate`` (public wrapper: validates, allocates, returns a
+    ``TrajectoryResult``) calls ``run`` (the one compiled function: the model's tables in one
+    record, the options in another, arrays in, arrays out); its event loop is a sequence of
+    small compiled steps.
+``grmc.engine.tables``
+    The Python side: ``kernel_arrays`` (the plain arrays of a ``Model``), their checks, the
+    tables and options records and the allocation of the loop's arrays.
 ``grmc.engine.oracle``
     A plain-Python twin of the kernel (same draw order, same floating-point operations),
     the reference the kernel is tested against.

@@ -1,6 +1,7 @@
 """The one jit decorator of grmc, and where its compiled code is cached.
 
-Every compiled function of the engine is decorated with :data:`jit`: nopython mode, the GIL
+Every compiled function of the engine is decorated with :data:`jit` (or, for the small
+steps of a loop, :data:`step` or :data:`inline_step`): nopython mode, the GIL
 released (``nogil=True``, so threads can run trajectories side by side), fastmath OFF (the
 plain-Python oracle must reproduce every floating-point operation bit for bit), numpy's error
 model (a division by zero gives inf instead of a Python exception; the kernels never divide
@@ -27,8 +28,9 @@ and, when it is 3 or 4, points ``NUMBA_CACHE_DIR`` there (numba itself skips an 
 record the outcome.
 
 numba checks a cached function against its own source file only: the kernels in
-``kernels.py`` embed the generator of ``rng.py``, so after editing ``rng.py`` delete the
-cache (``grmc/engine/__pycache__/*.nbi``, ``*.nbc``, or the directory above) by hand.
+``kernels.py`` embed the generator of ``rng.py`` and read the records of ``tables.py``, so
+after editing ``rng.py`` or the records' fields in ``tables.py`` delete the cache
+(``grmc/engine/__pycache__/*.nbi``, ``*.nbc``, or the directory above) by hand.
 """
 
 from __future__ import annotations
@@ -40,7 +42,8 @@ import tempfile
 from collections.abc import Callable, Iterable
 from pathlib import Path
 
-__all__ = ["CACHE_DIR", "CACHE_ENABLED", "is_writable_dir", "jit", "select_cache_dir"]
+__all__ = ["CACHE_DIR", "CACHE_ENABLED", "is_writable_dir", "jit", "inline_step",
+           "select_cache_dir", "step"]
 
 _ENGINE_DIR = Path(__file__).resolve().parent
 _IN_TREE = _ENGINE_DIR / "__pycache__"
@@ -146,3 +149,14 @@ import numba  # noqa: E402
 
 #: The decorator of every compiled engine function.
 jit = numba.njit(nogil=True, cache=CACHE_ENABLED, fastmath=False, error_model="numpy")
+
+#: The decorator of a small step of a compiled loop (same options, no cache of its own: a
+#: step is never called from Python, its code is compiled into its caller's).  A step called
+#: once in a loop is inlined by LLVM; measured in ``benchmarks/bench_engine.py``, this runs
+#: the event loop at the speed of the loop written out in one function, while numba's own
+#: IR-level inlining (:data:`inline_step`) of the larger steps cost about a third.
+step = numba.njit(nogil=True, fastmath=False, error_model="numpy")
+
+#: A step inlined at numba's IR level (``inline="always"``): for a small step called at more
+#: than one place in a loop, which LLVM would leave as a call.
+inline_step = numba.njit(inline="always", nogil=True, fastmath=False, error_model="numpy")

@@ -7,8 +7,11 @@ floating-point operation the kernel performs in the same order on IEEE doubles (
 floats), as listed step by step in the notes of :mod:`grmc.engine.kernels`.  It is written
 from the model's plain arrays directly (each factor and propensity evaluated from the state,
 no shared slots, no incremental slot updates, no tables, a plain linear search), so it also
-checks the kernel's table construction and its shortcuts.  It runs at well under
-a million events per second: for tests and small checks only.
+checks the kernel's table construction and its shortcuts.  Each step of the kernel's event
+loop has a function of the same name here (``_total``, ``_draw_channel``, ``_accept``,
+``_apply_event``, ``_apply_recorded``, ``_update_propensities``; ``_Recorder.close_bins`` for
+``_close_bins``), called in the same order by ``_phase``.  It runs at well under a million events per
+second: for tests and small checks only.
 
 References
 ----------
@@ -26,7 +29,7 @@ import math
 
 import numpy as np
 
-from .kernels import SINE, TrajectoryResult, allocate_outputs, validate_inputs, validate_options
+from .tables import SINE, TrajectoryResult, allocate_outputs, validate_inputs, validate_options
 from .rng import py_state, py_step, py_store, py_u64_to_double
 
 __all__ = ["simulate"]
@@ -78,7 +81,7 @@ class _Recorder:
     """The window's bins, samples and integrals, in the kernel's operation order."""
 
     def __init__(self, x, duration_s, n_samples, oversample, out, flow_weight=None):
-        self.samples, self.bins, self.integ, self.integ2, self.events, _ = out
+        self.samples, self.bins, self.integ, self.integ2, self.events = out[:5]
         self.flow_weight = None if flow_weight is None else [float(w) for w in flow_weight]
         self.flows = [0.0] * (n_samples * oversample)
         self.duration_s = duration_s
@@ -146,6 +149,45 @@ def _accept(mod, tw: float, u3: float) -> bool:
     return u3 * (1.0 + mod.depth) < h
 
 
+def _draw_channel(a: list[float], order: list[int], target: float) -> int:
+    """Step 5: a plain linear search of the running sum, the rounding guard, the swap."""
+    n = len(order)
+    cum = 0.0
+    k = 0
+    while k < n:
+        cum += a[order[k]]
+        if cum > target:
+            break
+        k += 1
+    if k == n:
+        k = n - 1
+        while k > 0 and a[order[k]] <= 0.0:
+            k -= 1
+    p = order[k]
+    if k > 0:
+        order[k], order[k - 1] = order[k - 1], p
+    return p
+
+
+def _apply_event(model: _Model, p: int, x: list[float]) -> None:
+    """Step 6 while settling: the change of channel p."""
+    for s, d in model.changes[p]:
+        x[s] = x[s] + d
+
+
+def _apply_recorded(model: _Model, p: int, t: float, x: list[float], rec: _Recorder) -> None:
+    """Step 6 in the window: integrate each changed species up to t, then change it."""
+    for s, d in model.changes[p]:
+        rec.change(s, t, x)
+        x[s] = x[s] + d
+
+
+def _update_propensities(model: _Model, p: int, x: list[float], a: list[float]) -> None:
+    """Step 7: the dependent channels of p, each evaluated from the state."""
+    for q in model.dependents[p]:
+        a[q] = model.propensity(q, x)
+
+
 def _phase(model: _Model, x: list[float], a: list[float], order: list[int], rng: list[int],
            t_end: float, rec: _Recorder | None, mod=None, t_shift: float = 0.0) -> int:
     """One phase (settling when ``rec`` is None); the steps of the kernel's module notes.
@@ -155,7 +197,6 @@ def _phase(model: _Model, x: list[float], a: list[float], order: list[int], rng:
     a0 = _total(a)
     t = 0.0
     n_events = 0
-    n = len(order)
     while a0 > 0.0:                                                     # step 1
         u1 = py_u64_to_double(py_step(rng))                             # step 2
         t_new = t + (-math.log(1.0 - u1) / a0)
@@ -164,21 +205,7 @@ def _phase(model: _Model, x: list[float], a: list[float], order: list[int], rng:
         if rec is not None and rec.next_edge < t_new:                   # step 4
             rec.close_bins(t_new, x)
         u2 = py_u64_to_double(py_step(rng))                             # step 5
-        target = u2 * a0
-        cum = 0.0
-        k = 0
-        while k < n:
-            cum += a[order[k]]
-            if cum > target:
-                break
-            k += 1
-        if k == n:
-            k = n - 1
-            while k > 0 and a[order[k]] <= 0.0:
-                k -= 1
-        p = order[k]
-        if k > 0:
-            order[k], order[k - 1] = order[k - 1], p
+        p = _draw_channel(a, order, u2 * a0)
         if mod is not None and p == mod.channel:                        # step 5a
             u3 = py_u64_to_double(py_step(rng))
             if not _accept(mod, t_new + t_shift, u3):
@@ -190,12 +217,10 @@ def _phase(model: _Model, x: list[float], a: list[float], order: list[int], rng:
             rec.events[p] += 1
             if rec.flow_weight is not None:
                 rec.flows[rec.j] += rec.flow_weight[p]
-        for s, d in model.changes[p]:
-            if rec is not None:
-                rec.change(s, t, x)
-            x[s] = x[s] + d
-        for q in model.dependents[p]:                                   # step 7
-            a[q] = model.propensity(q, x)
+            _apply_recorded(model, p, t, x, rec)
+        else:
+            _apply_event(model, p, x)
+        _update_propensities(model, p, x, a)                            # step 7
         a0 = _total(a)
     if rec is not None:
         rec.finish(x)
@@ -244,4 +269,4 @@ def simulate(stoich, coefficient, factor_species, factor_sign, factor_offset, de
     out[5][:] = [int(c) for c in x]
     py_store(rng, rng_state)
     flows = np.array(rec.flows if fw is not None else [], dtype=np.float64)
-    return TrajectoryResult(*out, n_events, rng_state.copy(), flows)
+    return TrajectoryResult(*out[:6], n_events, rng_state.copy(), flows)
