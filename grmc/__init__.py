@@ -10,11 +10,15 @@ build_model(scenario) -> Model
 steady_state(model) -> ndarray            (continuum, under the charge constraint)
 lna_covariance(model) -> ndarray          (linear-noise covariance)
 run(scenario, ...) -> xarray.Dataset      (the ensemble, as ``grmc run`` writes it)
+
+The continuum and linear-noise solvers are in :mod:`grmc.continuum` (``steady_state``,
+``lna``), the exact solver in :mod:`grmc.exact`, and an output file is read with
+:func:`grmc.result.open_result`.
 """
 
 from __future__ import annotations
 
-__version__ = "0.1.0"
+from ._version import __version__  # noqa: E402
 
 from .model import Model, build_model  # noqa: E402
 from .scenario import Scenario, ScenarioError, load_scenario  # noqa: E402
@@ -24,7 +28,8 @@ def run(scenario: Scenario, **options):
     """Run the ensemble of a scenario and return the output ``xarray.Dataset``.
 
     The same as ``grmc run`` without writing a file; options as in
-    :func:`grmc.simulate.run` (``trajectories``, ``seed``, ``workers``, ``progress``).
+    :func:`grmc.simulate.run` (``trajectories``, ``seed``, ``workers``, ``progress``,
+    ``accuracy``, ``band_Hz``, ``max_seconds``).
     """
     from .simulate import run as _run
 

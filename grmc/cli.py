@@ -4,27 +4,85 @@ Only this module knows about argparse, exit codes and the terminal.  Each subcom
 one public function and formats its result.  Heavy libraries (numba, xarray, matplotlib, dask)
 are imported inside the commands that need them, so ``grmc --help`` answers at once.
 
-Exit status: 0 success; 2 bad scenario or arguments (one message on stderr naming the file
-and the key, no traceback); 1 anything else; 130 interrupted (nothing written).
+Exit status: 0 success; 2 bad scenario, arguments or input file (one message on stderr
+naming the file and the key or option, no traceback); 1 a failure of the environment (disk
+full, a folder that vanished, a cluster that went away: one line); 130 interrupted by Ctrl-C,
+143 by SIGTERM (nothing written either way).
 """
 
 from __future__ import annotations
 
 import argparse
 import json
+import os
 import shlex
+import signal
 import sys
+import tempfile
 from pathlib import Path
 
 from . import __version__
-from .scenario import ScenarioError, load_scenario
+from .scenario import ScenarioError, check_counts, load_scenario
 
-EXIT_OK, EXIT_FAIL, EXIT_USAGE, EXIT_INTERRUPTED = 0, 1, 2, 130
+EXIT_OK, EXIT_FAIL, EXIT_USAGE, EXIT_INTERRUPTED, EXIT_TERMINATED = 0, 1, 2, 130, 143
 DEMO_SCENARIO = "demo_pixel.toml"
 
 
 class UsageError(Exception):
     """Bad arguments (exit status 2)."""
+
+
+class Terminated(KeyboardInterrupt):
+    """SIGTERM, delivered like Ctrl-C so every clean-up path runs (exit status 143)."""
+
+
+def _on_sigterm(signum, frame):  # pragma: no cover - exercised in a subprocess
+    raise Terminated()
+
+
+class _Parser(argparse.ArgumentParser):
+    """argparse with errors as one line and a hint instead of the whole usage block."""
+
+    def error(self, message: str):
+        hint = f"see '{self.prog} --help'"
+        self.exit(EXIT_USAGE, f"grmc: error: {message} ({hint})\n")
+
+
+def _probe_folder(folder: Path, what: str) -> None:
+    """Refuse a folder that cannot be created or written (before any work is done)."""
+    existing = folder
+    while not existing.exists() and existing != existing.parent:
+        existing = existing.parent
+    if not existing.is_dir():
+        raise UsageError(f"{what}: {existing} is a file, not a folder")
+    try:
+        fd, probe = tempfile.mkstemp(prefix=".grmc-probe.", dir=existing)
+        os.close(fd)
+        os.unlink(probe)
+    except OSError as exc:
+        raise UsageError(f"{what}: cannot write in {existing} ({exc.strerror or exc})") from None
+
+
+def _output_file(value: str | None, default: Path, option: str = "-o") -> Path:
+    """The output file of a command, checked to be writable before anything runs."""
+    if value is not None and not value.strip():
+        raise UsageError(f"{option}: empty file name")
+    path = Path(value) if value is not None else default
+    if path.is_dir():
+        raise UsageError(f"{option} {path}: is an existing folder; give a file name")
+    _probe_folder(path.parent, f"{option} {path}")
+    return path
+
+
+def _output_folder(value: str | None, default: Path, option: str = "-o") -> Path:
+    """An output folder, checked to be creatable and writable before anything runs."""
+    if value is not None and not value.strip():
+        raise UsageError(f"{option}: empty folder name")
+    path = Path(value) if value is not None else default
+    if path.exists() and not path.is_dir():
+        raise UsageError(f"{option} {path}: is a file, not a folder")
+    _probe_folder(path, f"{option} {path}")
+    return path
 
 
 def _positive_int(text: str) -> int:
@@ -44,6 +102,8 @@ def _nonneg_int(text: str) -> int:
         raise argparse.ArgumentTypeError(f"expected a whole number, got {text!r}") from None
     if value < 0:
         raise argparse.ArgumentTypeError(f"must be >= 0, got {value}")
+    if value > 2**63 - 1:
+        raise argparse.ArgumentTypeError(f"must be <= {2**63 - 1}, got {value}")
     return value
 
 
@@ -69,8 +129,39 @@ def _existing_file(name: str) -> Path:
     return path
 
 
+def _read_output(name: str):
+    """A grmc output file as a Result; one line saying what it is not, otherwise."""
+    from .result import NotAGrmcFile, open_result
+
+    try:
+        return open_result(_existing_file(name))
+    except NotAGrmcFile as exc:
+        raise UsageError(str(exc)) from None
+
+
+def _refuse_absurd_run(scenario, trajectories: int | None, workers: int | None) -> None:
+    """Refuse (exit 2) a run that could not finish or fit in memory; warn on a long one."""
+    from .cost import cost_warnings, refuse_absurd, run_cost
+
+    cost = run_cost(scenario, trajectories=trajectories, workers=workers or 1)
+    refuse_absurd(scenario, cost)
+    for text in cost_warnings(cost):
+        print(f"grmc: warning: {scenario.source}: {text}", file=sys.stderr)
+
+
 def _default_output(scenario_path: str, suffix: str = "") -> Path:
     return Path("outputs") / f"{Path(scenario_path).stem}{suffix}.nc"
+
+
+def _json_ready(obj):
+    """Replace non-finite floats by None, recursively."""
+    if isinstance(obj, float):
+        return obj if obj == obj and abs(obj) != float("inf") else None
+    if isinstance(obj, dict):
+        return {k: _json_ready(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_json_ready(v) for v in obj]
+    return obj
 
 
 # ------------------------------------------------------------------------------ commands
@@ -79,8 +170,8 @@ def cmd_check(args) -> int:
 
     scenario = load_scenario(args.scenario)
     info = summarize(scenario)
-    if args.json:
-        print(json.dumps(info, indent=2))
+    if args.json:  # JSON has no NaN: an undefined value is null
+        print(json.dumps(_json_ready(info), indent=2, allow_nan=False))
     else:
         print(format_summary(info))
     return EXIT_OK
@@ -92,9 +183,11 @@ def cmd_run(args) -> int:
     from .simulate import run
 
     scenario = load_scenario(args.scenario)
-    out = Path(args.output) if args.output else _default_output(args.scenario)
+    out = _output_file(args.output, _default_output(args.scenario))
+    _refuse_absurd_run(scenario, args.trajectories, args.workers)
+    target = _accuracy_options(args)
     ds = run(scenario, trajectories=args.trajectories, seed=args.seed, workers=args.workers,
-             progress=None if not args.quiet else False, command=args.command_line)
+             progress=None if not args.quiet else False, command=args.command_line, **target)
     save(ds, out)
     if not args.quiet:
         print(format_run_table(ds))
@@ -102,12 +195,51 @@ def cmd_run(args) -> int:
     return EXIT_OK
 
 
+def _accuracy_options(args) -> dict:
+    """``--accuracy``, ``--band F1:F2`` and ``--max-seconds`` checked (exit 2 names them)."""
+    where = args.scenario
+
+    def number(option: str, text: str) -> float:
+        try:
+            value = float(text)
+        except ValueError:
+            raise UsageError(f"{where}: {option}: expected a number, got {text!r}") from None
+        if value != value or value in (float("inf"), float("-inf")):
+            raise UsageError(f"{where}: {option}: must be finite, got {text!r}")
+        return value
+
+    out = {}
+    if args.accuracy is not None:
+        out["accuracy"] = number("--accuracy", args.accuracy)
+        if not 0.0 < out["accuracy"] < 1.0:
+            raise UsageError(f"{where}: --accuracy: must be between 0 and 1 (a relative "
+                             f"half-width, e.g. 0.05), got {args.accuracy}")
+    if args.band is not None:
+        parts = args.band.split(":")
+        if len(parts) != 2:
+            raise UsageError(f"{where}: --band: expected F1:F2 in Hz, got {args.band!r}")
+        f1, f2 = (number("--band", p) for p in parts)
+        if f1 <= 0 or f1 >= f2:
+            raise UsageError(f"{where}: --band: needs 0 < F1 < F2, got {args.band}")
+        out["band_Hz"] = (f1, f2)
+    if args.max_seconds is not None:
+        out["max_seconds"] = number("--max-seconds", args.max_seconds)
+        if out["max_seconds"] <= 0:
+            raise UsageError(f"{where}: --max-seconds: must be > 0, got {args.max_seconds}")
+    return out
+
+
 def cmd_plot(args) -> int:
     from .plotting import plot_all
 
-    path = _existing_file(args.file)
-    outdir = Path(args.output) if args.output else path.parent
-    for p in plot_all(path, outdir):
+    res = _read_output(args.file)
+    path = Path(args.file)
+    outdir = _output_folder(args.output, path.parent)
+    written = plot_all(res, outdir, stem=path.stem)
+    if not written:
+        raise UsageError(f"{path}: nothing to draw (no spectrum, transient, histogram, "
+                         "population, event rates or sweep deviations in the file)")
+    for p in written:
         print(f"wrote {p}")
     return EXIT_OK
 
@@ -135,11 +267,11 @@ def _export_request(args, path: Path, ds) -> tuple[str | None, tuple[float, floa
 
 
 def cmd_export(args) -> int:
-    from .dataset import load
     from .export import export_csv, export_spice, export_verilog_a
 
-    path = _existing_file(args.file)
-    ds = load(path)
+    path = Path(args.file)
+    ds = _read_output(args.file).ds
+    _output_file(args.output, Path(args.output or "."))
     quantity, band = _export_request(args, path, ds)
     common = dict(quantity=quantity, source=args.source, band=band)
     try:
@@ -161,47 +293,69 @@ def cmd_exact(args) -> int:
     from .dataset import save
     from .exact_output import exact_dataset
 
+    from .report import format_exact_table
+
     scenario = load_scenario(args.scenario)
-    out = Path(args.output) if args.output else _default_output(args.scenario, "_exact")
+    check_counts(scenario)
+    out = _output_file(args.output, _default_output(args.scenario, "_exact"))
     ds = exact_dataset(scenario, command=args.command_line)
     save(ds, out)
-    print(f"exact solution on {int(ds.attrs['n_states'])} states, probability outside the "
-          f"truncation {float(ds['probability_outside']):.2e}")
+    print(format_exact_table(ds))
     print(f"wrote {out}")
     return EXIT_OK
 
 
 def cmd_sweep(args) -> int:
-    from .sweep import parse_vary, run_sweep
+    from .report import format_sweep_point
+    from .sweep import SchedulerUnreachable, parse_vary, parts_dir, round_integers, run_sweep
 
     scenario = load_scenario(args.scenario)
-    try:
-        varies = [parse_vary(v) for v in args.vary]
-    except ValueError as exc:
-        raise UsageError(f"--vary: {exc}") from None
-    out = Path(args.output) if args.output else _default_output(args.scenario, "_sweep")
+    varies = []
+    for text in args.vary:
+        try:
+            vary, note = round_integers(parse_vary(text))
+        except ValueError as exc:
+            raise UsageError(f"--vary: {exc}") from None
+        if note:
+            print(f"grmc: warning: {note}", file=sys.stderr)
+        varies.append(vary)
+    out = _output_file(args.output, _default_output(args.scenario, "_sweep"))
+    if args.resume and not parts_dir(out).exists():
+        print(f"grmc: note: nothing to resume ({parts_dir(out)} does not exist); "
+              "starting the sweep afresh", file=sys.stderr)
+
+    def report(res: dict) -> None:
+        print(format_sweep_point(res, res.get("assignment", {})), flush=True)
+
     try:
         run_sweep(scenario, varies, out, scheduler=args.scheduler, resume=args.resume,
                   workers=args.workers, command=args.command_line,
-                  noise_frequencies=tuple(args.frequency) if args.frequency else None)
-    except KeyboardInterrupt:
-        print(f"grmc: interrupted; finished points are kept in {out}.parts, "
+                  noise_frequencies=tuple(args.frequency) if args.frequency else None,
+                  on_point=report)
+    except SchedulerUnreachable as exc:
+        print(f"grmc: error: {exc}", file=sys.stderr)
+        return EXIT_FAIL
+    except KeyboardInterrupt as exc:
+        how = "terminated" if isinstance(exc, Terminated) else "interrupted"
+        print(f"grmc: {how}; finished points are kept in {parts_dir(out)}, "
               "run the same command with --resume to continue", file=sys.stderr)
-        return EXIT_INTERRUPTED
+        return EXIT_TERMINATED if isinstance(exc, Terminated) else EXIT_INTERRUPTED
     print(f"wrote {out}")
     return EXIT_OK
 
 
 def cmd_demo(args) -> int:
-    from .demo import run_demo
+    from .demo import demo_scenario_path, run_demo
 
-    run_demo(Path(args.output), workers=args.workers, command=args.command_line)
+    outdir = _output_folder(args.output, Path("outputs"))
+    _refuse_absurd_run(load_scenario(demo_scenario_path()), None, args.workers)
+    run_demo(outdir, workers=args.workers, command=args.command_line)
     return EXIT_OK
 
 
 # ------------------------------------------------------------------------------ parser
 def build_parser() -> argparse.ArgumentParser:
-    parser = argparse.ArgumentParser(
+    parser = _Parser(
         prog="grmc",
         description="Exact stochastic generation-recombination noise in nanoscale "
         "semiconductor volumes: carriers counted one by one, spectra with confidence "
@@ -217,6 +371,15 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--trajectories", type=_positive_int, help="override [run] trajectories")
     p.add_argument("--seed", type=_nonneg_int, help="override [run] seed")
     p.add_argument("--workers", type=_positive_int, help="threads (default: all cores)")
+    p.add_argument("--accuracy", metavar="REL",
+                   help="run in rounds until every checked 95 %% half-width is at most REL "
+                        "(relative, 0 < REL < 1); overrides [run] accuracy")
+    p.add_argument("--band", metavar="F1:F2",
+                   help="band [Hz] the spectra must reach the accuracy in; overrides "
+                        "[run] band_Hz (default: from the linear-noise corners)")
+    p.add_argument("--max-seconds", metavar="S",
+                   help="time budget of a run in rounds; overrides [run] max_seconds "
+                        "(default 600)")
     p.add_argument("-q", "--quiet", action="store_true", help="no table, no progress bar")
     p.set_defaults(func=cmd_run)
 
@@ -266,10 +429,44 @@ def build_parser() -> argparse.ArgumentParser:
     p.set_defaults(func=cmd_sweep)
 
     p = sub.add_parser("demo", help="run the bundled demo end to end into outputs/")
-    p.add_argument("-o", "--output", default="outputs", help="folder (default outputs/)")
+    p.add_argument("-o", "--output", help="folder (default outputs/)")
     p.add_argument("--workers", type=_positive_int, help="threads (default: all cores)")
     p.set_defaults(func=cmd_demo)
     return parser
+
+
+def _known_refusal(exc: Exception) -> bool:
+    """The solvers' refusals of a case they cannot handle (bad input, exit 2)."""
+    from .continuum import ContinuumError
+    from .exact import StateSpaceTooLarge
+
+    return isinstance(exc, (ContinuumError, StateSpaceTooLarge))
+
+
+def _dispatch(args) -> int:
+    where = getattr(args, "scenario", None) or getattr(args, "file", "")
+    try:
+        return args.func(args)
+    except (ScenarioError, UsageError) as exc:
+        print(f"grmc: error: {exc}", file=sys.stderr)
+        return EXIT_USAGE
+    except Terminated:
+        print("grmc: terminated; no output written", file=sys.stderr)
+        return EXIT_TERMINATED
+    except KeyboardInterrupt:
+        print("grmc: interrupted; no output written", file=sys.stderr)
+        return EXIT_INTERRUPTED
+    except BrokenPipeError:  # pragma: no cover - e.g. piped into head
+        return EXIT_OK
+    except (OSError, MemoryError) as exc:  # the environment failed, not the input
+        text = f"{exc.strerror}: {exc.filename}" if getattr(exc, "filename", None) else exc
+        print(f"grmc: error: {where}: {type(exc).__name__}: {text}", file=sys.stderr)
+        return EXIT_FAIL
+    except Exception as exc:
+        if _known_refusal(exc):
+            print(f"grmc: error: {where}: {exc}", file=sys.stderr)
+            return EXIT_USAGE
+        raise
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -277,25 +474,13 @@ def main(argv: list[str] | None = None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
     args.command_line = _command_line(argv)
+    previous = signal.getsignal(signal.SIGTERM)
     try:
-        return args.func(args)
-    except ScenarioError as exc:
-        print(f"grmc: error: {exc}", file=sys.stderr)
-        return EXIT_USAGE
-    except UsageError as exc:
-        print(f"grmc: error: {exc}", file=sys.stderr)
-        return EXIT_USAGE
-    except Exception as exc:  # known refusals of the solvers: one clear line, no traceback
-        from .continuum import ContinuumError
-        from .exact import StateSpaceTooLarge
-
-        if isinstance(exc, (ContinuumError, StateSpaceTooLarge)):
-            where = getattr(args, "scenario", None) or getattr(args, "file", "")
-            print(f"grmc: error: {where}: {exc}", file=sys.stderr)
-            return EXIT_USAGE
-        raise
-    except KeyboardInterrupt:
-        print("grmc: interrupted; no output written", file=sys.stderr)
-        return EXIT_INTERRUPTED
-    except BrokenPipeError:  # pragma: no cover - e.g. piped into head
-        return EXIT_OK
+        signal.signal(signal.SIGTERM, _on_sigterm)
+    except ValueError:  # not the main thread (e.g. called from a worker): leave it alone
+        previous = None
+    try:
+        return _dispatch(args)
+    finally:
+        if previous is not None:
+            signal.signal(signal.SIGTERM, previous)

@@ -18,13 +18,22 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING
 
-from . import __version__
+from ._version import __version__
 from .atomic import atomic_target
 
 if TYPE_CHECKING:  # pragma: no cover
     import xarray as xr
 
-__all__ = ["Var", "VARIABLES", "COORDINATES", "OutputError", "finish", "validate", "save", "load"]
+__all__ = ["Var", "VARIABLES", "COORDINATES", "OutputError", "FILL_VALUE", "finish", "validate",
+           "save", "load"]
+
+#: Fill value of every floating-point variable: what the file holds where a value is not
+#: defined (a Lorentzian fit that resolved no corner, the histogram row of a species whose
+#: count range was too wide to store, a correlation time of a count that never fluctuates).
+#: It is the netCDF default fill of doubles (NC_FILL_DOUBLE, netCDF User Guide), stored as
+#: the variable's ``_FillValue`` attribute, so netCDF and CF readers (xarray among them)
+#: show these places as missing (NaN) again; the file itself holds no NaN.
+FILL_VALUE = 9.969209968386869e36
 
 
 class OutputError(ValueError):
@@ -52,6 +61,8 @@ COORDINATES: dict[str, Var] = {
     "sweep": Var(("sweep",), "1", "sweep point index"),
     "noise_frequency": Var(("noise_frequency",), "Hz", "frequency of the per-pixel noise"),
     "pixel_frequency": Var(("pixel_frequency",), "Hz", "band centre of the pixel spectra"),
+    "frequency_band": Var(("frequency_band",), "Hz",
+                          "geometric centre of the frequency band (10 bands per decade)"),
 }
 
 _ENS = "realization: mean"
@@ -190,6 +201,42 @@ VARIABLES: dict[str, Var] = {
     "current_psd_photon": Var(("frequency",), "A2 Hz-1",
                               "part of the linear-noise current spectrum driven by the shot "
                               "noise of the optical generation"),
+    # band-averaged spectra (10 bands per decade), see grmc.bands
+    "psd_band": Var(("species", "frequency_band"), "Hz-1",
+                    "PSD of the count averaged over the band's Fourier frequencies", _ENS),
+    "psd_band_low": Var(("species", "frequency_band"), "Hz-1",
+                        "lower end of the 95 % interval of psd_band (chi-squared with the "
+                        "band's 2 K m degrees of freedom: K segments, m Fourier frequencies)"),
+    "psd_band_high": Var(("species", "frequency_band"), "Hz-1",
+                         "upper end of the 95 % interval of psd_band (chi-squared with the "
+                         "band's 2 K m degrees of freedom: K segments, m Fourier frequencies)"),
+    "psd_band_lna": Var(("species", "frequency_band"), "Hz-1",
+                        "linear-noise PSD averaged over the band's Fourier frequencies"),
+    "current_psd_band": Var(("frequency_band",), "A2 Hz-1",
+                            "PSD of the readout current averaged over the band's Fourier "
+                            "frequencies", _ENS),
+    "current_psd_band_low": Var(("frequency_band",), "A2 Hz-1",
+                                "lower end of the 95 % interval of current_psd_band "
+                                "(chi-squared with the band's 2 K m degrees of freedom)"),
+    "current_psd_band_high": Var(("frequency_band",), "A2 Hz-1",
+                                 "upper end of the 95 % interval of current_psd_band "
+                                 "(chi-squared with the band's 2 K m degrees of freedom)"),
+    "current_psd_band_lna": Var(("frequency_band",), "A2 Hz-1",
+                                "linear-noise PSD of the readout current averaged over the "
+                                "band's Fourier frequencies"),
+    "band_frequencies": Var(("frequency_band",), "1",
+                            "Fourier frequencies averaged in the band (m)"),
+    "pixel_var": Var(("realization", "species"), "1",
+                     "each pixel's own time-weighted variance of the count", "t: variance"),
+    "pixel_var_lna": Var(("realization", "species"), "1",
+                         "linear-noise variance of each pixel's own model"),
+    "pixel_steady_continuum": Var(("realization", "species"), "1",
+                                  "continuum steady-state count of each pixel's own model"),
+    "psd_lna_pixels": Var(("species", "frequency"), "Hz-1",
+                          "average over the pixels of each pixel's own linear-noise spectrum"),
+    "current_psd_lna_pixels": Var(("frequency",), "A2 Hz-1",
+                                  "average over the pixels of each pixel's own linear-noise "
+                                  "current spectrum"),
 }
 
 
@@ -235,6 +282,8 @@ def finish(ds: xr.Dataset, *, title: str, scenario_toml: str, command: str | Non
     for name in ds.data_vars:
         if ds[name].dtype.kind in "iu":
             ds[name].encoding["_FillValue"] = None
+        elif ds[name].dtype.kind == "f":
+            ds[name].encoding["_FillValue"] = FILL_VALUE
     now = _dt.datetime.now(_dt.timezone.utc).replace(microsecond=0).isoformat()
     if command is None:
         command = " ".join(["grmc", *sys.argv[1:]]) if sys.argv else "grmc"

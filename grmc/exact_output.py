@@ -15,6 +15,7 @@ from .dataset import finish
 from .model import build_model
 from .readout import counts_events, describe_current, exact_current, lna_current
 from .scenario import Scenario
+from .theory import theory
 
 __all__ = ["exact_dataset", "exact_frequencies", "POINTS_PER_DECADE"]
 
@@ -57,22 +58,14 @@ def exact_dataset(scenario: Scenario, *, command: str | None = None,
     else:
         t_eval, note = t + run.settle_s, "start state evolved through settle_s"
     res = exact.solve(model, freqs=freqs, times=t_eval, x0=x0, max_states=max_states)
-    ss = continuum.steady_state(model)
-    lna = continuum.lna(model)
-    smat = continuum.lna_psd(model, freqs)
-    psd_lna = np.real(np.einsum("iif->if", smat))
+    th = theory(model, freqs, times=t, start=res.transient_mean[0],
+                current=scenario.readout is not None)
     data = {
         "stationary_mean": (("species",), res.mean),
         "stationary_var": (("species",), res.var),
-        "steady_continuum": (("species",), ss),
-        "var_lna": (("species",), np.diag(lna.covariance).copy()),
-        "relaxation_time_lna": (("mode",), np.asarray(lna.relaxation_times, dtype=float)),
         "psd": (("species", "frequency"), res.psd),
-        "psd_lna": (("species", "frequency"), psd_lna),
         "count_mean": (("species", "t"), res.transient_mean.T),
         "count_var": (("species", "t"), res.transient_var.T),
-        "count_continuum": (("species", "t"),
-                            continuum.transient(model, res.transient_mean[0], t).T),
         "probability_outside": ((), float(res.mass_outside)),
     }
     lo = int(res.states.min())
@@ -83,15 +76,13 @@ def exact_dataset(scenario: Scenario, *, command: str | None = None,
         v, p = res.marginal(s)
         hist[s, v - lo] = p
     data["count_histogram"] = (("species", "count_value"), hist)
+    data.update(th.variables)
     readout = scenario.readout
     attrs = {}
     if readout is not None:
         cur = exact_current(model, res)
         data["current_mean"] = ((), cur.mean)
         data["current_psd"] = (("frequency",), cur.psd)
-        theory = lna_current(model, freqs, smat=smat, x=ss)
-        data["current_psd_lna"] = (("frequency",), theory.psd)
-        data["current_mean_continuum"] = ((), theory.mean)
         if counts_events(model):
             data["current_shot_noise"] = ((), cur.white)
         if readout.band_Hz is not None:  # exact spectrum: no sampling interval

@@ -68,7 +68,7 @@ from functools import cached_property
 import numpy as np
 
 from .materials import BOLTZMANN_EV_K
-from .scenario import Scenario, ScenarioError
+from .scenario import EMISSION_DENSITY_MAX, Scenario, ScenarioError
 
 __all__ = [
     "BOLTZMANN_EV_K",
@@ -154,6 +154,26 @@ class Channel:
 
 def _nearest_int(x: float) -> int:
     return int(math.floor(x + 0.5))
+
+
+def _emission_densities(scenario: Scenario, trap, kT: float) -> tuple[float, float]:
+    """n_1 = n_i exp(E_t / kT) and p_1 = n_i exp(-E_t / kT) [cm^-3] (Shockley & Read, Phys.
+    Rev. 87, 835, 1952), refused with the key named where they leave double precision.
+
+    Raises
+    ------
+    ScenarioError  When n_i exp(|E_t| / kT) > :data:`grmc.scenario.EMISSION_DENSITY_MAX`.
+    """
+    ni = scenario.material.intrinsic_density_cm3
+    exponent = abs(trap.energy_eV) / kT
+    if math.log(ni) + exponent > math.log(EMISSION_DENSITY_MAX):
+        raise ScenarioError(
+            scenario.source, f"traps.{trap.label}", "energy_eV",
+            f"n_i exp(|E_t - E_i| / kT) = 10^{(math.log(ni) + exponent) / math.log(10):.0f} "
+            f"cm^-3 at {scenario.material.temperature_K:g} K is beyond double precision "
+            f"(limit {EMISSION_DENSITY_MAX:.0e}); check the energy, the temperature and n_i "
+            "(which falls steeply on cooling)")
+    return ni * math.exp(trap.energy_eV / kT), ni * math.exp(-trap.energy_eV / kT)
 
 
 def nominal_counts(scenario: Scenario) -> Counts:
@@ -535,8 +555,7 @@ def build_model(scenario: Scenario, *, counts: Counts | None = None,
             continue
         if trap.kind == "donor":
             donor_traps += total
-        n1 = ni * math.exp(trap.energy_eV / kT)
-        p1 = ni * math.exp(-trap.energy_eV / kT)
+        n1, p1 = _emission_densities(scenario, trap, kT)
         cn, cp = trap.electron_capture_cm3_s, trap.hole_capture_cm3_s
         empty = Factor(M, -1, float(total), float(total))
         lab = trap.label

@@ -37,8 +37,10 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-from . import export, spectra
+from . import spectra
 from .atomic import atomic_target
+from .result import DEVIATION_THRESHOLD, Result, Spectrum, crossing_count, from_dataset, \
+    open_result
 
 if TYPE_CHECKING:  # pragma: no cover
     import xarray as xr
@@ -92,10 +94,25 @@ def _si(value: float, unit: str) -> str:
     return f"{value / 10 ** (3 * exp3):.3g} {prefix}{unit}"
 
 
-def _title(ds: xr.Dataset) -> str:
-    title = str(ds.attrs.get("title", "")).strip()
-    note = ds.attrs.get("_grmc_plot_note", "")
-    return f"{title} {note}".strip()
+#: Characters of a title line that fit a panel of the default width at the title's size.
+TITLE_WIDTH = 60
+
+
+def _as_result(ds: xr.Dataset | Result) -> Result:
+    return ds if isinstance(ds, Result) else from_dataset(ds)
+
+
+def _title(res: Result, sub: str, ax: Axes | None = None) -> str:
+    """The scenario title (with the result's note) shortened to one line that fits the
+    panel, then what the panel shows, wrapped."""
+    width = TITLE_WIDTH
+    if ax is not None:  # scale with the panel's width (the default panel is 6.4 in)
+        fig_w = ax.figure.get_figwidth() * ax.get_position().width
+        width = max(24, int(TITLE_WIDTH * fig_w / 5.6))
+    head = f"{res.title} {res.note}".strip()
+    head = textwrap.shorten(head, width, placeholder=" ...") if head else ""
+    lines = ([head] if head else []) + textwrap.wrap(sub, width)
+    return "\n".join(lines)
 
 
 def _species_label(name: str) -> str:
@@ -104,19 +121,11 @@ def _species_label(name: str) -> str:
     return name
 
 
-def _corners(ds: xr.Dataset, tab: export.SpectrumTable) -> tuple[list[float], str]:
+def _corners(tab: Spectrum) -> tuple[list[float], str]:
     """Corner frequencies from the file, else fitted here; and a note when there is none."""
-    if tab.is_current:
-        da = ds.get("current_corner_frequency")
-    else:
-        da = ds.get("corner_frequency")
-        if da is not None and "species" in da.dims:
-            da = da.sel(species=tab.quantity)
-    if da is not None:
-        vals = [float(v) for v in np.atleast_1d(np.asarray(da.values, dtype=float))]
-        vals = [v for v in vals if math.isfinite(v) and v > 0]
-        return vals, "" if vals else "no corner resolved"
-    if not np.any(np.isfinite(tab.psd_low)):
+    if tab.corners is not None:
+        return list(tab.corners), tab.corner_note
+    if not tab.has_interval:
         return [], ""
     try:
         res = spectra.analyse_spectrum(tab.frequency, tab.psd, tab.psd_low, tab.psd_high,
@@ -129,13 +138,13 @@ def _corners(ds: xr.Dataset, tab: export.SpectrumTable) -> tuple[list[float], st
 
 
 # --------------------------------------------------------------------------------------------
-def plot_psd(ds: xr.Dataset, species_or_current: str = "current", ax: Axes | None = None
-             ) -> Axes:
+def plot_psd(ds: xr.Dataset | Result, species_or_current: str = "current",
+             ax: Axes | None = None) -> Axes:
     """Log-log spectrum: Monte Carlo with its 95 % band, linear-noise line, corner(s).
 
     Parameters
     ----------
-    ds : xarray.Dataset  Output file contents
+    ds : xarray.Dataset or Result  Output file contents
     species_or_current : str  "current" or a species name
     ax : matplotlib Axes, optional
 
@@ -144,35 +153,37 @@ def plot_psd(ds: xr.Dataset, species_or_current: str = "current", ax: Axes | Non
     Axes
     """
     ax = _new_axes(ax)
+    res = _as_result(ds)
+    ds = res.ds
     try:
-        tab = export.spectrum_table(ds, species_or_current)
+        tab = res.spectrum(species_or_current)
     except (ValueError, KeyError) as exc:
         return _note(ax, f"no spectrum: {exc}")
     f = tab.frequency
-    if np.any(np.isfinite(tab.psd_low)):
+    if tab.has_interval:
         ax.fill_between(f, tab.psd_low, tab.psd_high, color=_MC_COLOR, alpha=0.25, lw=0,
                         label="95 % interval")
     k_txt = f", K = {tab.n_segments:.0f}" if tab.n_segments else ""
     ax.plot(f, tab.psd, color=_MC_COLOR, lw=0.8 if not tab.exact else 1.6,
             label="exact (master equation)" if tab.exact else f"Monte Carlo{k_txt}")
     if tab.psd_lna is not None:
-        ax.plot(f, tab.psd_lna, color=_LNA_COLOR, lw=1.4, ls="--", label="linear noise")
+        ax.plot(f, tab.psd_lna, color=_LNA_COLOR, lw=1.4, ls="--", label=tab.lna_label)
     both_ways = False
     if tab.is_current and "current_shot_noise" in ds:
         white = float(ds["current_shot_noise"])
-        both_ways = tab.current_mean_A is None or not math.isclose(
-            white, float(spectra.shot_noise_psd(tab.current_mean_A)), rel_tol=0.02)
+        both_ways = res.current_mean_A is None or not math.isclose(
+            white, float(spectra.shot_noise_psd(res.current_mean_A)), rel_tol=0.02)
         if both_ways:  # crossings both ways (a junction): the white level is 2 q (I_out + I_in)
             ax.axhline(white, color="C2", lw=1.0, ls=":",
                        label="shot noise of all crossings, 2q(I$_{out}$+I$_{in}$)")
-    if (tab.is_current and not both_ways and tab.current_mean_A is not None
-            and tab.current_mean_A != 0):
-        shot = float(spectra.shot_noise_psd(tab.current_mean_A))
+    if (tab.is_current and not both_ways and res.current_mean_A is not None
+            and res.current_mean_A != 0):
+        shot = float(spectra.shot_noise_psd(res.current_mean_A))
         ax.axhline(shot, color="C2", lw=1.0, ls=":",
-                   label=f"shot noise 2qI, I = {_si(abs(tab.current_mean_A), 'A')}")
+                   label=f"shot noise 2qI, I = {_si(abs(res.current_mean_A), 'A')}")
     ax.set_xscale("log")
     ax.set_yscale("log")
-    corners, why = _corners(ds, tab)
+    corners, why = _corners(tab)
     for i, fc in enumerate(corners):
         ax.axvline(fc, color=_CORNER_COLOR, lw=1.0, ls="-.",
                    label="corner frequency" if i == 0 else None)
@@ -193,14 +204,13 @@ def plot_psd(ds: xr.Dataset, species_or_current: str = "current", ax: Axes | Non
     else:
         ax.set_ylabel("count noise $S_N$ [counts²/Hz], one-sided")
         what = _species_label(tab.quantity)
-    head = _title(ds)
-    ax.set_title(f"{head}\n{what}" if head else what, fontsize=10)
+    ax.set_title(_title(res, what, ax), fontsize=10)
     ax.grid(True, which="major", alpha=0.3)
     ax.legend(fontsize=8, loc="lower left" if not why else "upper right")
     return ax
 
 
-def plot_transient(ds: xr.Dataset, ax: Axes | None = None, *,
+def plot_transient(ds: xr.Dataset | Result, ax: Axes | None = None, *,
                    species: str | list[str] | None = None) -> Axes:
     """Ensemble mean +/- one standard deviation of the counts against the continuum.
 
@@ -216,6 +226,8 @@ def plot_transient(ds: xr.Dataset, ax: Axes | None = None, *,
     Axes
     """
     ax = _new_axes(ax)
+    res = _as_result(ds)
+    ds = res.ds
     if "count_mean" not in ds or "t" not in ds.coords:
         return _note(ax, "this file has no count_mean(species, t): no transient to show")
     names = [str(s) for s in ds["species"].values]
@@ -223,7 +235,7 @@ def plot_transient(ds: xr.Dataset, ax: Axes | None = None, *,
     t = np.asarray(ds["t"].values, dtype=float)
     scale, prefix = _engineering(float(np.max(np.abs(t))) if t.size else 1.0)
     ts = t / scale
-    n_traj = ds.attrs.get("trajectories")
+    n_traj = res.trajectories
     for i, name in enumerate(chosen):
         color = f"C{i % 10}"
         label = _species_label(name)
@@ -241,15 +253,14 @@ def plot_transient(ds: xr.Dataset, ax: Axes | None = None, *,
     ax.set_xlabel(f"time t [{prefix}s]")
     ax.set_ylabel("count in the volume")
     ax.set_xlim(ts[0], ts[-1])
-    head = _title(ds)
     sub = "transient" + (f" ({n_traj} trajectories)" if n_traj else "")
-    ax.set_title(f"{head}\n{sub}" if head else sub, fontsize=10)
+    ax.set_title(_title(res, sub, ax), fontsize=10)
     ax.grid(True, alpha=0.3)
     ax.legend(fontsize=8)
     return ax
 
 
-def plot_histogram(ds: xr.Dataset, species: str, ax: Axes | None = None) -> Axes:
+def plot_histogram(ds: xr.Dataset | Result, species: str, ax: Axes | None = None) -> Axes:
     """Stationary count distribution against the Poisson law of the same mean.
 
     Parameters
@@ -273,13 +284,15 @@ def plot_histogram(ds: xr.Dataset, species: str, ax: Axes | None = None) -> Axes
     from scipy import stats
 
     ax = _new_axes(ax)
+    res = _as_result(ds)
+    ds = res.ds
     if "count_histogram" not in ds:
         return _note(ax, "this file has no count_histogram(species, count_value):\n"
                          "no stationary distribution to show")
     h = ds["count_histogram"].sel(species=species)
     n = np.asarray(h["count_value"].values, dtype=float)
     p = np.asarray(h.values, dtype=float)
-    if np.all(np.isnan(p)):
+    if np.all(np.isnan(p) | (p < 0)):  # nan, or the documented fill value -1
         return _note(ax, f"{_species_label(species)}: no histogram stored (its count range "
                          "is too wide to share an axis with the other species)")
     total = float(np.sum(p))
@@ -294,8 +307,7 @@ def plot_histogram(ds: xr.Dataset, species: str, ax: Axes | None = None) -> Axes
     window = slice(shown[0], shown[-1] + 1)
     n, p = n[window], p[window]
     ax.bar(n, p, width=0.9 if n.size < 60 else 1.0, color=_MC_COLOR, alpha=0.6,
-           label="exact (master equation)" if "probability_outside" in ds
-           else "Monte Carlo (time-weighted)")
+           label="exact (master equation)" if res.exact else "Monte Carlo (time-weighted)")
     pois = stats.poisson.pmf(n, mean)
     marker = "o" if n.size <= 60 else None
     ax.plot(n, pois, color="k", lw=1.0, marker=marker, ms=3,
@@ -311,9 +323,8 @@ def plot_histogram(ds: xr.Dataset, species: str, ax: Axes | None = None) -> Axes
     ax.text(0.98, 0.97, f"mean {mean:.4g}\nvariance {var:.4g}\nvariance/mean {fano:.3g}",
             transform=ax.transAxes, ha="right", va="top", fontsize=8,
             bbox={"boxstyle": "round", "fc": "white", "ec": "0.8"})
-    head = _title(ds)
     sub = f"stationary distribution: {_species_label(species)}"
-    ax.set_title(f"{head}\n{sub}" if head else sub, fontsize=10)
+    ax.set_title(_title(res, sub, ax), fontsize=10)
     top = max(float(np.max(p)), float(np.max(pois_all[window])))
     ax.set_ylim(0, 1.5 * top)  # headroom for the legend and the summary box
     ax.legend(fontsize=8, loc="upper left")
@@ -321,7 +332,7 @@ def plot_histogram(ds: xr.Dataset, species: str, ax: Axes | None = None) -> Axes
     return ax
 
 
-def plot_event_rates(ds: xr.Dataset, ax: Axes | None = None) -> Axes:
+def plot_event_rates(ds: xr.Dataset | Result, ax: Axes | None = None) -> Axes:
     """Horizontal bars of the mean event rate per channel, log scale.
 
     Parameters
@@ -333,6 +344,8 @@ def plot_event_rates(ds: xr.Dataset, ax: Axes | None = None) -> Axes:
     -------
     Axes
     """
+    res = _as_result(ds)
+    ds = res.ds
     if "event_rate" not in ds:
         return _note(_new_axes(ax), "this file has no event_rate(channel)")
     names = [str(c) for c in ds["channel"].values]
@@ -356,8 +369,7 @@ def plot_event_rates(ds: xr.Dataset, ax: Axes | None = None) -> Axes:
     hi = float(np.max(rates[positive])) if np.any(positive) else 10.0
     ax.set_xlim(floor, hi * 30)
     ax.set_xlabel("mean event rate per trajectory [1/s]")
-    head = _title(ds)
-    ax.set_title(f"{head}\nevent channels" if head else "event channels", fontsize=10)
+    ax.set_title(_title(res, "event channels", ax), fontsize=10)
     ax.grid(True, axis="x", which="major", alpha=0.3)
     return ax
 
@@ -369,7 +381,8 @@ def _pixel_kind(ds: xr.Dataset) -> str | None:
     return None
 
 
-def plot_population(ds: xr.Dataset, which: int | str = "mean", ax: Axes | None = None) -> Axes:
+def plot_population(ds: xr.Dataset | Result, which: int | str = "mean", ax: Axes | None = None
+                    ) -> Axes:
     """Histogram across pixels of the mean readout (``which="mean"``) or of the noise at the
     ``which``-th chosen frequency, with the threshold and the fraction above it.
 
@@ -384,6 +397,8 @@ def plot_population(ds: xr.Dataset, which: int | str = "mean", ax: Axes | None =
     Axes
     """
     ax = _new_axes(ax)
+    res = _as_result(ds)
+    ds = res.ds
     kind = _pixel_kind(ds)
     if kind is None:
         return _note(ax, "this file has no pixel population (add a [population] section)")
@@ -411,15 +426,16 @@ def plot_population(ds: xr.Dataset, which: int | str = "mean", ax: Axes | None =
                        label=f"threshold: {100 * p:.1f} ± {100 * e:.1f} % of pixels above")
             ax.legend(fontsize=8)
     ax.set_ylabel("pixels")
-    head = _title(ds)
-    ax.set_title(f"{head}\n{sub}" if head else sub, fontsize=10)
+    ax.set_title(_title(res, sub, ax), fontsize=10)
     ax.grid(True, alpha=0.3)
     return ax
 
 
-def plot_worst_pixels(ds: xr.Dataset, ax: Axes | None = None) -> Axes:
+def plot_worst_pixels(ds: xr.Dataset | Result, ax: Axes | None = None) -> Axes:
     """Band-averaged spectra of the noisiest pixels beside the population median."""
     ax = _new_axes(ax)
+    res = _as_result(ds)
+    ds = res.ds
     kind = _pixel_kind(ds)
     if kind is None:
         return _note(ax, "this file has no pixel population (add a [population] section)")
@@ -433,9 +449,7 @@ def plot_worst_pixels(ds: xr.Dataset, ax: Axes | None = None) -> Axes:
     ax.set_ylabel(f"band-averaged PSD [{unit}]")
     f0 = float(ds["noise_frequency"].values[0])
     ax.axvline(f0, color=_CORNER_COLOR, ls=":", lw=1)
-    head = _title(ds)
-    sub = f"noisiest pixels at {_si(f0, 'Hz')}"
-    ax.set_title(f"{head}\n{sub}" if head else sub, fontsize=10)
+    ax.set_title(_title(res, f"noisiest pixels at {_si(f0, 'Hz')}", ax), fontsize=10)
     ax.grid(True, which="both", alpha=0.3)
     ax.legend(fontsize=7)
     return ax
@@ -448,12 +462,13 @@ _DEVIATIONS = {
 }
 
 
-def plot_validity(ds: xr.Dataset, quantity: str = "mean", ax: Axes | None = None) -> Axes:
+def plot_validity(ds: xr.Dataset | Result, quantity: str = "mean", ax: Axes | None = None
+                  ) -> Axes:
     """Where the continuum answer fails: |relative deviation| against the mean count.
 
     One line per carrier species of a sweep file (``deviation_<quantity>`` with its standard
     error as error bars, against ``stationary_mean``, log-log), the 10 % level drawn, and the
-    count where each line crosses it marked (:func:`grmc.sweep.crossing_count`).
+    count where each line crosses it marked (:func:`grmc.result.crossing_count`).
 
     Parameters
     ----------
@@ -465,10 +480,10 @@ def plot_validity(ds: xr.Dataset, quantity: str = "mean", ax: Axes | None = None
     -------
     Axes
     """
-    from .sweep import DEVIATION_THRESHOLD, crossing_count
-
     name, what = _DEVIATIONS[quantity]
     ax = _new_axes(ax)
+    res = _as_result(ds)
+    ds = res.ds
     if name not in ds:
         return _note(ax, f"this file has no {name} (not a sweep file)")
     drew = False
@@ -502,9 +517,7 @@ def plot_validity(ds: xr.Dataset, quantity: str = "mean", ax: Axes | None = None
     ax.set_yscale("log")
     ax.set_xlabel("mean carrier count in the volume")
     ax.set_ylabel("|relative deviation|")
-    head = _title(ds)
-    sub = f"where the continuum fails: {what}"
-    ax.set_title(f"{head}\n{sub}" if head else sub, fontsize=10)
+    ax.set_title(_title(res, f"where the continuum fails: {what}", ax), fontsize=10)
     ax.grid(True, which="both", alpha=0.3)
     ax.legend(fontsize=8)
     return ax
@@ -521,7 +534,7 @@ def _swept_axis(ds: xr.Dataset) -> tuple[np.ndarray, str]:
     return np.asarray(ds[key].values, dtype=float), label
 
 
-def plot_sweep_noise(ds: xr.Dataset, ax: Axes | None = None) -> Axes:
+def plot_sweep_noise(ds: xr.Dataset | Result, ax: Axes | None = None) -> Axes:
     """Readout noise at the recorded frequencies against the swept key (e.g. temperature).
 
     Per frequency of a sweep file: the exact or Monte Carlo current PSD (markers),
@@ -539,6 +552,8 @@ def plot_sweep_noise(ds: xr.Dataset, ax: Axes | None = None) -> Axes:
     Axes
     """
     ax = _new_axes(ax)
+    res = _as_result(ds)
+    ds = res.ds
     if "current_psd_lna" not in ds:
         return _note(ax, "this sweep has no readout noise (the scenario has no [readout])")
     x, label = _swept_axis(ds)
@@ -560,9 +575,8 @@ def plot_sweep_noise(ds: xr.Dataset, ax: Axes | None = None) -> Axes:
     ax.set_yscale("log")
     ax.set_xlabel(label)
     ax.set_ylabel("current noise (A$^2$/Hz)")
-    head = _title(ds)
     sub = "readout noise against " + ("temperature" if label.startswith("temp") else label)
-    ax.set_title(f"{head}\n{sub}" if head else sub, fontsize=10)
+    ax.set_title(_title(res, sub, ax), fontsize=10)
     ax.grid(True, which="both", alpha=0.3)
     ax.legend(fontsize=7)
     return ax
@@ -579,95 +593,99 @@ def _grid(n: int, size: tuple[float, float] = _PANEL) -> tuple[Any, list[Axes]]:
     return fig, axes
 
 
-def plot_all(path_nc: str | os.PathLike[str], outdir: str | os.PathLike[str] | None = None
-             ) -> list[Path]:
+def _save(fig: Any, target: Path, written: list[Path]) -> None:
+    with atomic_target(target) as tmp:
+        fig.savefig(tmp, dpi=DPI, format="png")
+    written.append(target)
+
+
+def _plot_sweep(res: Result, out: Path, stem: str) -> list[Path]:
+    from matplotlib.figure import Figure
+
+    fig = Figure(figsize=(18.0, 5.0), layout="constrained")
+    axes = [fig.add_subplot(1, 3, i + 1) for i in range(3)]
+    for quantity, ax in zip(("mean", "var", "tau"), axes):
+        plot_validity(res, quantity, ax=ax)
+    written: list[Path] = []
+    _save(fig, out / f"{stem}_validity.png", written)
+    if res.has("current_psd_lna"):  # readout noise against the swept key
+        fig, (ax,) = _grid(1, (7.2, 4.8))
+        plot_sweep_noise(res, ax=ax)
+        _save(fig, out / f"{stem}_readout_noise.png", written)
+    return written
+
+
+def _plot_population_figures(res: Result, save) -> None:
+    n_f = res.ds.sizes["noise_frequency"]
+    fig, axes = _grid(1 + n_f, (6.4, 4.0))
+    plot_population(res, "mean", ax=axes[0])
+    for j, ax in enumerate(axes[1:]):
+        plot_population(res, j, ax=ax)
+    save(fig, "population")
+    fig, (ax,) = _grid(1, (7.2, 4.8))
+    plot_worst_pixels(res, ax=ax)
+    save(fig, "worst_pixels")
+
+
+def plot_all(path_nc: str | os.PathLike[str] | Result, outdir: str | os.PathLike[str] | None = None,
+             *, stem: str | None = None) -> list[Path]:
     """Write the figures of an output file as PNGs.
 
     Parameters
     ----------
-    path_nc : path  Output NetCDF file
+    path_nc : path or Result  Output NetCDF file (read with :func:`grmc.result.open_result`)
     outdir : path, optional  Directory for the PNGs (default: next to the file)
+    stem : str, optional  File name stem (default: the file's)
 
     Returns
     -------
     list of Path  Written files, among ``<stem>_psd.png`` (count spectra, one panel per
         species), ``<stem>_current_psd.png``, ``<stem>_transient.png``,
-        ``<stem>_histogram.png``, ``<stem>_rates.png``; a figure whose variables the file
-        lacks is skipped.  A sweep file is drawn at its first point (noted in the titles).
+        ``<stem>_histogram.png``, ``<stem>_population.png``, ``<stem>_worst_pixels.png``,
+        ``<stem>_rates.png`` and, for a sweep, ``<stem>_validity.png``; a figure whose
+        variables the file lacks is skipped (an empty list: nothing to draw).
     """
-    import xarray as xr
-
-    path_nc = Path(path_nc)
-    out = Path(outdir) if outdir is not None else path_nc.parent
-    out.mkdir(parents=True, exist_ok=True)
-    with xr.open_dataset(path_nc) as opened:
-        ds = opened.load()
-    if "deviation_mean" in ds:  # a sweep file: the validity figure
-        stem = path_nc.stem
-        from matplotlib.figure import Figure
-
-        fig = Figure(figsize=(18.0, 5.0), layout="constrained")
-        axes = [fig.add_subplot(1, 3, i + 1) for i in range(3)]
-        for quantity, ax in zip(("mean", "var", "tau"), axes):
-            plot_validity(ds, quantity, ax=ax)
-        target = out / f"{stem}_validity.png"
-        with atomic_target(target) as tmp:
-            fig.savefig(tmp, dpi=DPI, format="png")
-        written = [target]
-        if "current_psd_lna" in ds:  # readout noise against the swept key
-            fig, (ax,) = _grid(1, (7.2, 4.8))
-            plot_sweep_noise(ds, ax=ax)
-            target = out / f"{stem}_readout_noise.png"
-            with atomic_target(target) as tmp:
-                fig.savefig(tmp, dpi=DPI, format="png")
-            written.append(target)
-        return written
-    if "sweep" in ds.dims:
-        n_sweep = ds.sizes["sweep"]
-        ds = ds.isel(sweep=0)
-        ds.attrs["_grmc_plot_note"] = f"(sweep point 1 of {n_sweep})"
-    stem = path_nc.stem
+    if isinstance(path_nc, Result):
+        res, default_dir, stem = path_nc, Path("."), stem or "grmc"
+    else:
+        res, default_dir = open_result(path_nc), Path(path_nc).parent
+        stem = stem or Path(path_nc).stem
+    out = Path(outdir) if outdir is not None else default_dir  # made by the first figure
+    if res.has("deviation_mean"):  # a sweep file: the validity figure
+        return _plot_sweep(res, out, stem)
+    if res.sweep_points:
+        res = res.point(0)
+    ds = res.ds
     written: list[Path] = []
 
     def save(fig: Any, name: str) -> None:
-        target = out / f"{stem}_{name}.png"
-        with atomic_target(target) as tmp:
-            fig.savefig(tmp, dpi=DPI, format="png")
-        written.append(target)
+        _save(fig, out / f"{stem}_{name}.png", written)
 
-    names = [str(s) for s in ds["species"].values] if "species" in ds.coords else []
+    names = list(res.species)
     if "psd" in ds and names:
         fig, axes = _grid(len(names))
         for name, ax in zip(names, axes):
-            plot_psd(ds, name, ax=ax)
+            plot_psd(res, name, ax=ax)
         save(fig, "psd")
-    if "current_psd" in ds:
+    if res.has_current:
         fig, (ax,) = _grid(1, (7.2, 4.8))
-        plot_psd(ds, "current", ax=ax)
+        plot_psd(res, "current", ax=ax)
         save(fig, "current_psd")
     if "count_mean" in ds and names:
         fig, axes = _grid(len(names), (6.4, 3.8))
         for name, ax in zip(names, axes):
-            plot_transient(ds, ax=ax, species=name)
+            plot_transient(res, ax=ax, species=name)
         save(fig, "transient")
     if "count_histogram" in ds and names:
         fig, axes = _grid(len(names), (6.4, 3.8))
         for name, ax in zip(names, axes):
-            plot_histogram(ds, name, ax=ax)
+            plot_histogram(res, name, ax=ax)
         save(fig, "histogram")
     if _pixel_kind(ds) is not None:
-        n_f = ds.sizes["noise_frequency"]
-        fig, axes = _grid(1 + n_f, (6.4, 4.0))
-        plot_population(ds, "mean", ax=axes[0])
-        for j, ax in enumerate(axes[1:]):
-            plot_population(ds, j, ax=ax)
-        save(fig, "population")
-        fig, (ax,) = _grid(1, (7.2, 4.8))
-        plot_worst_pixels(ds, ax=ax)
-        save(fig, "worst_pixels")
+        _plot_population_figures(res, save)
     if "event_rate" in ds:
         n_ch = ds.sizes.get("channel", 1)
         fig, (ax,) = _grid(1, (8.0, 1.3 + 0.3 * n_ch))
-        plot_event_rates(ds, ax=ax)
+        plot_event_rates(res, ax=ax)
         save(fig, "rates")
     return written

@@ -16,7 +16,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-__all__ = ["BANDS_PER_DECADE", "PixelBands", "pixel_bands", "single_trap_share",
+__all__ = ["BANDS_PER_DECADE", "PixelBands", "own_theory", "pixel_bands", "single_trap_share",
            "threshold_fraction", "worst_pixels"]
 
 BANDS_PER_DECADE = 6
@@ -131,3 +131,55 @@ def single_trap_share(model, freqs: np.ndarray, *, readout=None) -> float:
         with np.errstate(divide="ignore", invalid="ignore"):
             share = np.maximum(share, np.clip(1.0 - without / full, 0.0, 1.0))
     return share
+
+
+def own_theory(rows, model_of, freqs: np.ndarray, *, readout=None) -> dict:
+    """Each pixel beside its own theory, like with like (``dopants = "poisson"``).
+
+    A pooled variance across pixels holds the spread of the pixels' means as well and cannot
+    be compared with the linear-noise variance of the nominal pixel.  Here every pixel's own
+    time variance is set beside the linear-noise variance of its own model (its own dopant and
+    trap counts; van Kampen, Stochastic Processes in Physics and Chemistry, ch. X), and the
+    linear-noise spectra of the pixels are averaged: the theory line of the pooled spectrum.
+
+    Parameters
+    ----------
+    rows : list of tuples  Per trajectory, in order: (index, time-mean [count],
+        time-mean of squares [count^2], ..., counts) as the run reduces them
+    model_of : callable  Counts -> Model of that pixel
+    freqs : ndarray  Frequencies of the spectra [Hz]
+    readout : Readout, optional  With a readout the current's spectrum is averaged too
+
+    Returns
+    -------
+    dict  Output variables ``pixel_var``, ``pixel_var_lna``, ``pixel_steady_continuum``
+        (realization, species), ``psd_lna_pixels`` (species, frequency) and, with a readout,
+        ``current_psd_lna_pixels`` (frequency)
+    """
+    from . import continuum
+    from .readout import lna_current
+
+    theory: dict = {}
+    for row in rows:
+        counts = row[4]
+        if counts in theory:
+            continue
+        m = model_of(counts)
+        ss = continuum.steady_state(m)
+        smat = continuum.lna_psd(m, freqs)
+        cur = lna_current(m, freqs, smat=smat, x=ss).psd if readout is not None else None
+        theory[counts] = (ss, np.diag(continuum.lna(m).covariance).copy(),
+                          np.real(np.einsum("iif->if", smat)), cur)
+    own = [theory[row[4]] for row in rows]
+    means = np.array([row[1] for row in rows])
+    var = np.maximum(np.array([row[2] for row in rows]) - means**2, 0.0)
+    dims = ("realization", "species")
+    out = {
+        "pixel_var": (dims, var),
+        "pixel_var_lna": (dims, np.array([t[1] for t in own])),
+        "pixel_steady_continuum": (dims, np.array([t[0] for t in own])),
+        "psd_lna_pixels": (("species", "frequency"), np.mean([t[2] for t in own], axis=0)),
+    }
+    if readout is not None:
+        out["current_psd_lna_pixels"] = (("frequency",), np.mean([t[3] for t in own], axis=0))
+    return out

@@ -1,4 +1,6 @@
-"""Printed summaries of an output Dataset (the table ``grmc run`` prints)."""
+"""Printed summaries of an output file: the tables ``grmc run`` and ``grmc exact`` print and
+the line ``grmc sweep`` prints per point.  Everything is read through
+:class:`grmc.result.Result`."""
 
 from __future__ import annotations
 
@@ -7,8 +9,9 @@ import math
 import numpy as np
 
 from .model import ELEMENTARY_CHARGE_C
+from .result import Result, from_dataset
 
-__all__ = ["format_run_table", "FLAG_SIGMAS"]
+__all__ = ["format_run_table", "format_exact_table", "format_sweep_point", "FLAG_SIGMAS"]
 
 #: A Monte Carlo value is flagged when it differs from the continuum or linear-noise value by
 #: more than this many standard errors (two-sided p ~ 0.003 for a normal estimator).
@@ -65,90 +68,128 @@ def _band_text(ds) -> str:
     return text
 
 
-def format_run_table(ds) -> str:
-    """Per species: Monte Carlo mean ± standard error against the continuum, variance
-    against the linear-noise value, and a flag (``!``) where they differ by more than
-    :data:`FLAG_SIGMAS` standard errors; then the spectral time constants and the current.
+def _as_result(ds) -> Result:
+    return ds if isinstance(ds, Result) else from_dataset(ds)
 
-    Parameters
-    ----------
-    ds : xarray.Dataset  Output of :func:`grmc.simulate.run`
 
-    Returns
-    -------
-    str
-    """
-    n = int(ds.attrs.get("trajectories", 0))
-    lines = [f"{ds.attrs.get('title', '')}  ({n} trajectories, seed {ds.attrs.get('seed')})"]
-    head = (f"  {'species':<20}{'MC mean':>12}{'± s.e.':>10}{'continuum':>12}{'':>9}"
-            f"{'MC var':>12}{'± s.e.':>10}{'LNA var':>12}{'':>9}")
-    lines.append(head)
-    for i, s in enumerate(ds["species"].values):
-        m = float(ds["stationary_mean"][i])
-        me = float(ds["stationary_mean_stderr"][i])
+def _species_rows(res: Result, first: str) -> list[str]:
+    """Mean against the continuum and variance against the linear-noise value, flagged."""
+    ds = res.ds
+    lines = [f"  {'species':<20}{first + ' mean':>12}{'± s.e.':>10}{'continuum':>12}{'':>9}"
+             f"{first + ' var':>12}{'± s.e.':>10}{'LNA var':>12}{'':>9}"]
+    fallback = np.full(len(res.species), np.nan)  # an exact value has no statistical error
+    me_all = res.values("stationary_mean_stderr") if res.has("stationary_mean_stderr") \
+        else fallback
+    ve_all = res.values("stationary_var_stderr") if res.has("stationary_var_stderr") \
+        else fallback
+    mark = _relative if res.exact else _flag
+    for i, s in enumerate(res.species):
+        m, me = float(ds["stationary_mean"][i]), float(me_all[i])
         c = float(ds["steady_continuum"][i])
-        v = float(ds["stationary_var"][i])
-        ve = float(ds["stationary_var_stderr"][i]) if "stationary_var_stderr" in ds else np.nan
+        v, ve = float(ds["stationary_var"][i]), float(ve_all[i])
         lv = float(ds["var_lna"][i])
         lines.append(
-            f"  {str(s):<20}{_g(m, 6):>12}{_g(me, 2):>10}{_g(c, 6):>12}{_flag(m, c, me):>9}"
-            f"{_g(v, 5):>12}{_g(ve, 2):>10}{_g(lv, 5):>12}{_flag(v, lv, ve):>9}"
-        )
-    lines.append(f"  ('!': differs by more than {FLAG_SIGMAS:g} standard errors; in a small "
-                 "volume the continuum answer is expected to be off)")
-    if int(ds.attrs.get("excess_pairs", 0)) > 0:
-        lines.append("  note: the window starts with a pulse of excess pairs, so the time averages "
-                     "above include the decay and are not stationary values; see the transient "
-                     "(count_mean against count_continuum)")
+            f"  {s:<20}{_g(m, 6):>12}{_g(me, 2):>10}{_g(c, 6):>12}{mark(m, c, me):>9}"
+            f"{_g(v, 5):>12}{_g(ve, 2):>10}{_g(lv, 5):>12}{mark(v, lv, ve):>9}")
+    return lines
+
+
+def _pixel_rows(res: Result) -> list[str]:
+    """A pixel population: each pixel against its own continuum mean and linear-noise
+    variance, the differences averaged over the pixels with their standard error."""
+    lines = [f"  {'species':<20}{'MC mean':>12}{'± s.e.':>10}{'continuum':>12}{'':>9}"
+             f"{'MC var':>12}{'± s.e.':>10}{'LNA var':>12}{'':>9}"]
+    n = res.ds.sizes["realization"]
+    for s in res.species:
+        cols = []
+        for own, theory in (("trajectory_mean", "pixel_steady_continuum"),
+                            ("pixel_var", "pixel_var_lna")):
+            x, ref = res.values(own, s), res.values(theory, s)
+            d = x - ref
+            se = float(np.std(d, ddof=1) / np.sqrt(n)) if n > 1 else math.nan
+            m, r = float(np.mean(x)), float(np.mean(ref))
+            # the flag judges the mean difference by its own standard error
+            cols.append(f"{_g(m, 6):>12}{_g(se, 2):>10}{_g(r, 6):>12}"
+                        f"{_flag(m - r, 0.0, se):>9}")
+        lines.append(f"  {s:<20}" + "".join(cols))
+    lines.append(f"  (a population: each of the {n} pixels against its own continuum mean and "
+                 "linear-noise variance, averaged over the pixels; ± the standard error of the "
+                 "mean difference)")
+    return lines
+
+
+def _relative(value: float, reference: float, stderr: float = 0.0) -> str:
+    """Relative difference of an exact value from the theory's, in per cent."""
+    return _pct(_ratio(value, reference))
+
+
+def _spectral_lines(res: Result) -> list[str]:
+    ds, lines = res.ds, []
     if "tau_spectrum" in ds:
         lines.append("  time constants from the spectra, tau = 1/(2 pi f_c):")
-        for i, s in enumerate(ds["species"].values):
-            lines.append(f"    {str(s):<20}{_fit_text(ds, 'tau_spectrum', 'spectrum_kind', i)}")
+        for i, s in enumerate(res.species):
+            lines.append(f"    {s:<20}{_fit_text(ds, 'tau_spectrum', 'spectrum_kind', i)}")
     if "relaxation_time_lna" in ds and ds["relaxation_time_lna"].size:
         times = ", ".join(_g(t, 3) for t in ds["relaxation_time_lna"].values)
         lines.append(f"  linear-noise relaxation times:      {times} s")
-    if "response_amplitude" in ds:
-        lines.append("  response at the drive frequency (amplitude, phase vs sin(2 pi f t)):")
-        for i, s in enumerate(ds["species"].values):
-            a, ae = float(ds["response_amplitude"][i]), float(ds["response_amplitude_stderr"][i])
-            p, pe = float(ds["response_phase"][i]), float(ds["response_phase_stderr"][i])
-            ca, cp = (float(ds["response_amplitude_continuum"][i]),
-                      float(ds["response_phase_continuum"][i]))
-            lines.append(f"    {str(s):<20}{_g(a, 4)} ± {_g(ae, 2)} (continuum {_g(ca, 4)}), "
-                         f"{_g(p, 3)} ± {_g(pe, 2)} rad (continuum {_g(cp, 3)})")
-        if "current_response_amplitude" in ds:
-            lines.append(
-                f"    {'current':<20}{_g(float(ds['current_response_amplitude']), 4)} ± "
-                f"{_g(float(ds['current_response_amplitude_stderr']), 2)} A (continuum "
-                f"{_g(float(ds['current_response_amplitude_continuum']), 4)}), "
-                f"{_g(float(ds['current_response_phase']), 3)} ± "
-                f"{_g(float(ds['current_response_phase_stderr']), 2)} rad (continuum "
-                f"{_g(float(ds['current_response_phase_continuum']), 3)})")
-    if "current_mean" in ds:
-        i_mean = float(ds["current_mean"])
-        cont = (f" (continuum {_g(float(ds['current_mean_continuum']), 5)} A)"
-                if "current_mean_continuum" in ds else "")
-        lines.append(f"  current: mean {_g(i_mean, 5)} A{cont}")
-        if "current_shot_noise" in ds:
-            white = float(ds["current_shot_noise"])
-            fano = white / (2 * ELEMENTARY_CHARGE_C * abs(i_mean)) if i_mean else math.inf
-            lines.append(f"           white (shot) level {_g(white, 3)} A^2/Hz, "
-                         f"{_g(fano, 3)} x 2q|I|" + (" (crossings both ways)"
-                                                    if fano > 1.02 else ""))
-        if "current_plateau" in ds:
-            for j in range(ds["current_plateau"].size):
-                s0 = float(ds["current_plateau"][j])
-                if not math.isfinite(s0):
-                    continue
-                fc = float(ds["current_corner_frequency"][j])
-                fce = float(ds["current_corner_frequency_stderr"][j])
-                lines.append(f"           noise plateau {_g(s0, 3)} A^2/Hz = "
-                             f"{_g(math.sqrt(s0), 3)} A/sqrt(Hz), corner {_g(fc, 3)} "
-                             f"± {_g(fce, 2)} Hz")
-            if str(ds["current_spectrum_kind"].values) == "unresolved":
-                lines.append("           no corner resolved in the current spectrum")
-        if "current_noise_rms" in ds:
-            lines.append("           " + _band_text(ds))
+    return lines
+
+
+def _response_lines(res: Result) -> list[str]:
+    ds = res.ds
+    if "response_amplitude" not in ds:
+        return []
+    lines = ["  response at the drive frequency (amplitude, phase vs sin(2 pi f t)):"]
+    rows = [(s, "", i) for i, s in enumerate(res.species)]
+    if "current_response_amplitude" in ds:
+        rows.append(("current", " A", None))
+    for name, unit, i in rows:
+        pre = "current_" if i is None else ""
+
+        def v(key):
+            da = ds[pre + key]
+            return float(da if i is None else da[i])
+        lines.append(
+            f"    {name:<20}{_g(v('response_amplitude'), 4)} ± "
+            f"{_g(v('response_amplitude_stderr'), 2)}{unit} (continuum "
+            f"{_g(v('response_amplitude_continuum'), 4)}), {_g(v('response_phase'), 3)} ± "
+            f"{_g(v('response_phase_stderr'), 2)} rad (continuum "
+            f"{_g(v('response_phase_continuum'), 3)})")
+    return lines
+
+
+def _current_lines(res: Result) -> list[str]:
+    ds = res.ds
+    i_mean = res.scalar("current_mean")
+    if i_mean is None:
+        return []
+    cont = res.scalar("current_mean_continuum")
+    lines = [f"  current: mean {_g(i_mean, 5)} A"
+             + (f" (continuum {_g(cont, 5)} A)" if cont is not None else "")]
+    white = res.scalar("current_shot_noise")
+    if white is not None:
+        fano = white / (2 * ELEMENTARY_CHARGE_C * abs(i_mean)) if i_mean else math.inf
+        lines.append(f"           white (shot) level {_g(white, 3)} A^2/Hz, {_g(fano, 3)} x "
+                     "2q|I|" + (" (crossings both ways)" if fano > 1.02 else ""))
+    if "current_plateau" in ds:
+        for j in range(ds["current_plateau"].size):
+            s0 = float(ds["current_plateau"][j])
+            if not math.isfinite(s0):
+                continue
+            fc = float(ds["current_corner_frequency"][j])
+            fce = float(ds["current_corner_frequency_stderr"][j])
+            lines.append(f"           noise plateau {_g(s0, 3)} A^2/Hz = "
+                         f"{_g(math.sqrt(s0), 3)} A/sqrt(Hz), corner {_g(fc, 3)} "
+                         f"± {_g(fce, 2)} Hz")
+        if str(ds["current_spectrum_kind"].values) == "unresolved":
+            lines.append("           no corner resolved in the current spectrum")
+    if "current_noise_rms" in ds:
+        lines.append("           " + _band_text(ds))
+    return lines
+
+
+def _population_lines(res: Result) -> list[str]:
+    ds, lines = res.ds, []
     for kind, unit in (("current", "A"), ("count", "counts")):
         if f"pixel_{kind}_noise" not in ds:
             continue
@@ -165,8 +206,117 @@ def format_run_table(ds) -> str:
             text += (f"; telegraph-like {100 * float(ds['telegraph_fraction'][j]):.1f} ± "
                      f"{100 * float(ds['telegraph_fraction_stderr'][j]):.1f} %")
             lines.append(text)
-    if "events_total" in ds.attrs and ds.attrs.get("wall_time_s", 0) > 0:
-        ev = int(ds.attrs["events_total"])
-        wall = float(ds.attrs["wall_time_s"])
-        lines.append(f"  {ev:.3g} events in {wall:.2f} s ({ev / wall / 1e6:.1f} M events/s)")
+    return lines
+
+
+def _accuracy_lines(res: Result) -> list[str]:
+    """The accuracy reached by an adaptive run against its target."""
+    ds = res.ds
+    if "accuracy_target" not in ds.attrs:
+        return []
+    f1, f2 = (float(f) for f in ds.attrs["accuracy_band_Hz"])
+    return [f"  accuracy: +-{100 * float(ds.attrs['accuracy_reached']):.3g} % reached "
+            f"(target +-{100 * float(ds.attrs['accuracy_target']):g} %, "
+            f"{f1:.3g}-{f2:.3g} Hz) after {int(ds.attrs['rounds'])} rounds; worst: "
+            f"{ds.attrs.get('accuracy_worst', '?')}"]
+
+
+#: What the speed line's wall time holds unless told otherwise: the kernels are compiled (or
+#: loaded from the cache) on their first call, inside the timed part of a run.
+TIMING_NOTE = "including loading or compiling the kernels on first use"
+
+
+def _speed_line(res: Result, note: str = TIMING_NOTE) -> list[str]:
+    attrs = res.ds.attrs
+    if "events_total" not in attrs or not attrs.get("wall_time_s", 0) > 0:
+        return []
+    ev, wall = int(attrs["events_total"]), float(attrs["wall_time_s"])
+    return [f"  {ev:.3g} events in {wall:.2f} s ({ev / wall / 1e6:.1f} M events/s, {note})"]
+
+
+def format_run_table(ds, *, timing_note: str = TIMING_NOTE) -> str:
+    """Per species: Monte Carlo mean ± standard error against the continuum, variance
+    against the linear-noise value, and a flag (``!``) where they differ by more than
+    :data:`FLAG_SIGMAS` standard errors; then the spectral time constants and the current.
+
+    Parameters
+    ----------
+    ds : xarray.Dataset or Result  Output of :func:`grmc.simulate.run`
+    timing_note : str  What the run's wall time includes (the speed line)
+
+    Returns
+    -------
+    str
+    """
+    res = _as_result(ds)
+    lines = [f"{res.title}  ({res.trajectories or 0} trajectories, seed {res.seed})"]
+    lines += _pixel_rows(res) if res.has("pixel_var") else _species_rows(res, "MC")
+    lines.append(f"  ('!': differs by more than {FLAG_SIGMAS:g} standard errors; in a small "
+                 "volume the continuum answer is expected to be off)")
+    if int(res.ds.attrs.get("excess_pairs", 0)) > 0:
+        lines.append("  note: the window starts with a pulse of excess pairs, so the time averages "
+                     "above include the decay and are not stationary values; see the transient "
+                     "(count_mean against count_continuum)")
+    for part in (_spectral_lines, _response_lines, _current_lines, _population_lines,
+                 _accuracy_lines):
+        lines += part(res)
+    lines += _speed_line(res, timing_note)
     return "\n".join(lines)
+
+
+def format_exact_table(ds) -> str:
+    """The exact (master-equation) mean and variance of each species beside the continuum
+    and linear-noise values, the truncation and the readout current.
+
+    Parameters
+    ----------
+    ds : xarray.Dataset or Result  Output of :func:`grmc.exact_output.exact_dataset`
+
+    Returns
+    -------
+    str
+    """
+    res = _as_result(ds)
+    attrs = res.ds.attrs
+    outside = res.scalar("probability_outside")
+    lines = [f"{res.title}  (exact solution on {int(attrs.get('n_states', 0))} states, "
+             f"probability outside the truncation {outside if outside is not None else 0:.2e})"]
+    lines += _species_rows(res, "exact")
+    lines.append("  (columns after the continuum and LNA values: the exact value's relative "
+                 "difference from them; in a small volume the continuum answer is expected to "
+                 "be off)")
+    lines += _spectral_lines(res) + _current_lines(res)
+    return "\n".join(lines)
+
+
+def format_sweep_point(result: dict, varied: dict) -> str:
+    """One line per finished sweep point: the varied values, the method, the deviations.
+
+    Parameters
+    ----------
+    result : dict  A point's result (:func:`grmc.sweep.evaluate_point` keys)
+    varied : dict  Swept key -> value of the point
+
+    Returns
+    -------
+    str
+    """
+    keys = ", ".join(f"{k}={v:g}" for k, v in varied.items())
+    parts = []
+    for i, s in enumerate(result["species"]):
+        if s.startswith("trapped:"):
+            continue
+        dm = _ratio(result["mean"][i], result["continuum"][i])
+        dv = _ratio(result["var"][i], result["var_lna"][i])
+        parts.append(f"{s} mean {_pct(dm)} var {_pct(dv)}")
+    return f"point {int(result['index']) + 1}: {keys}  [{result['method']}]  " + "; ".join(parts)
+
+
+def _ratio(value: float, reference: float) -> float:
+    if not (math.isfinite(value) and math.isfinite(reference)) or reference == 0:
+        return math.nan
+    return value / reference - 1.0
+
+
+def _pct(x: float) -> str:
+    return "-" if not math.isfinite(x) else f"{100 * x:+.1f} %"

@@ -32,6 +32,7 @@ __all__ = [
     "Readout",
     "Reservoir",
     "Scenario",
+    "check_counts",
     "load_scenario",
     "parse_scenario",
     "set_key",
@@ -66,6 +67,11 @@ class ScenarioError(ValueError):
         elif key:
             where = f"{key}: "
         super().__init__(f"{source}: {where}{message}")
+
+    def __reduce__(self):
+        """Rebuilt from its four parts, so that the error survives pickling (a sweep point
+        refused in a Dask worker reaches the command line intact)."""
+        return (type(self), (self.source, self.section, self.key, self.message))
 
 
 # --------------------------------------------------------------------------------------------
@@ -210,6 +216,9 @@ class RunSettings:
     settle_s : float  Simulated and discarded before t = 0 [s]
     seed : int  Seed of every random stream
     dopants : "rounded" or "poisson"  How dopant and trap counts are set per trajectory
+    accuracy : float, optional  Target relative 95 % half-width; the run goes in rounds
+    band_Hz : (float, float), optional  Band the accuracy is asked over [Hz]
+    max_seconds : float  Time budget of a run in rounds [s]
     """
 
     trajectories: int = 256
@@ -218,6 +227,9 @@ class RunSettings:
     settle_s: float = 0.0
     seed: int = 1
     dopants: Literal["rounded", "poisson"] = "rounded"
+    accuracy: float | None = None
+    band_Hz: tuple[float, float] | None = None
+    max_seconds: float = 600.0
 
 
 @dataclass(frozen=True)
@@ -332,6 +344,19 @@ class Scenario:
 # --------------------------------------------------------------------------------------------
 
 
+#: Largest count the event engine holds exactly: it keeps the state in float64 (integers are
+#: exact below 2^53; the margin of one bit leaves room for the excess pairs and the changes).
+COUNT_MAX = 2**52
+#: Largest density accepted [cm^-3]: no solid holds more than about 1e23 atoms per cm^3
+#: (common practice), so anything above this is a typing slip, not a material.
+DENSITY_MAX = 1.0e24
+#: Smallest volume accepted [cm^3]: (0.1 nm)^3, less than one atom.
+VOLUME_MIN = 1.0e-24
+#: Largest n_i exp(|E_t - E_i| / kT) accepted [cm^-3]: beyond it the emission rates and their
+#: products overflow double precision long before any count could follow them.
+EMISSION_DENSITY_MAX = 1.0e150
+
+
 @dataclass(frozen=True)
 class _Key:
     kind: str  # "float", "int", "str", "list3", "floatlist", "band"
@@ -353,18 +378,18 @@ _SECTIONS_ALLOWED = ("material", "volume", "traps", "light", "start", "run", "re
                      "population", "reservoir")
 
 _MATERIAL = {
-    "temperature_K": _F(required=True, lo=0.0, lo_open=True),
+    "temperature_K": _F(required=True, lo=1e-3, hi=1e4),
     "name": _S(choices=_materials.NAMES),
     "composition_x": _F(),
     # required without a name; with one, these override the library value one by one
-    "intrinsic_density_cm3": _F(lo=0.0, lo_open=True),
-    "radiative_cm3_s": _F(lo=0.0),
-    "auger_electron_cm6_s": _F(lo=0.0),
-    "auger_hole_cm6_s": _F(lo=0.0),
-    "electron_thermal_velocity_cm_s": _F(lo=0.0, lo_open=True),
-    "hole_thermal_velocity_cm_s": _F(lo=0.0, lo_open=True),
-    "donors_cm3": _F(default=0.0, lo=0.0),
-    "acceptors_cm3": _F(default=0.0, lo=0.0),
+    "intrinsic_density_cm3": _F(lo=0.0, lo_open=True, hi=DENSITY_MAX),
+    "radiative_cm3_s": _F(lo=0.0, hi=1e-3),
+    "auger_electron_cm6_s": _F(lo=0.0, hi=1e-15),
+    "auger_hole_cm6_s": _F(lo=0.0, hi=1e-15),
+    "electron_thermal_velocity_cm_s": _F(lo=0.0, lo_open=True, hi=3e10),
+    "hole_thermal_velocity_cm_s": _F(lo=0.0, lo_open=True, hi=3e10),
+    "donors_cm3": _F(default=0.0, lo=0.0, hi=DENSITY_MAX),
+    "acceptors_cm3": _F(default=0.0, lo=0.0, hi=DENSITY_MAX),
 }
 #: ``[material]`` keys that are library parameters (the scenario's value wins).
 _MATERIAL_OVERRIDES = ("intrinsic_density_cm3", "radiative_cm3_s", "auger_electron_cm6_s",
@@ -372,55 +397,58 @@ _MATERIAL_OVERRIDES = ("intrinsic_density_cm3", "radiative_cm3_s", "auger_electr
                        "hole_thermal_velocity_cm_s")
 _MOBILITIES = ("electron_mobility_cm2_Vs", "hole_mobility_cm2_Vs")
 _VOLUME = {
-    "size_nm": _Key("list3", lo=0.0, lo_open=True),
-    "volume_cm3": _F(lo=0.0, lo_open=True),
-    "surface_area_cm2": _F(lo=0.0, lo_open=True),
+    "size_nm": _Key("list3", lo=0.0, lo_open=True, hi=1e7),
+    "volume_cm3": _F(lo=VOLUME_MIN, hi=1e6),
+    "surface_area_cm2": _F(lo=0.0, lo_open=True, hi=1e2),
 }
 _TRAP = {
     "label": _S(required=True, pattern=r"^[A-Za-z0-9_-]+$"),
-    "count": _I(lo=0),
-    "density_cm3": _F(lo=0.0),
-    "areal_density_cm2": _F(lo=0.0),
-    "energy_eV": _F(),
-    "energy_below_conduction_eV": _F(),
-    "energy_above_valence_eV": _F(),
+    "count": _I(lo=0, hi=COUNT_MAX),
+    "density_cm3": _F(lo=0.0, hi=DENSITY_MAX),
+    "areal_density_cm2": _F(lo=0.0, hi=1e17),
+    "energy_eV": _F(lo=-10.0, hi=10.0),
+    "energy_below_conduction_eV": _F(lo=-10.0, hi=10.0),
+    "energy_above_valence_eV": _F(lo=-10.0, hi=10.0),
     "kind": _S(default="acceptor", choices=("acceptor", "donor")),
-    "electron_capture_cm3_s": _F(lo=0.0),
-    "hole_capture_cm3_s": _F(lo=0.0),
-    "electron_cross_section_cm2": _F(lo=0.0),
-    "hole_cross_section_cm2": _F(lo=0.0),
-    "thermal_velocity_cm_s": _F(lo=0.0, lo_open=True),
+    "electron_capture_cm3_s": _F(lo=0.0, hi=1e-3),
+    "hole_capture_cm3_s": _F(lo=0.0, hi=1e-3),
+    "electron_cross_section_cm2": _F(lo=0.0, hi=1e-8),
+    "hole_cross_section_cm2": _F(lo=0.0, hi=1e-8),
+    "thermal_velocity_cm_s": _F(lo=0.0, lo_open=True, hi=3e10),
 }
 _LIGHT = {
-    "generation_cm3_s": _F(default=0.0, lo=0.0),
+    "generation_cm3_s": _F(default=0.0, lo=0.0, hi=1e40),
     "waveform": _S(default="steady", choices=("steady", "off", "sine", "square")),
-    "modulation_frequency_Hz": _F(default=0.0, lo=0.0),
+    "modulation_frequency_Hz": _F(default=0.0, lo=0.0, hi=1e15),
     "modulation_depth": _F(default=0.0, lo=0.0),
 }
-_START = {"excess_pairs": _I(default=0, lo=0)}
+_START = {"excess_pairs": _I(default=0, lo=0, hi=COUNT_MAX)}
 _RUN = {
-    "trajectories": _I(default=256, lo=1),
+    "trajectories": _I(default=256, lo=1, hi=2**53),
     "duration_s": _F(default=1.0e-6, lo=0.0, lo_open=True),
-    "samples": _I(default=4096, lo=16),
+    "samples": _I(default=4096, lo=16, hi=2**53),
     "settle_s": _F(default=0.0, lo=0.0),
-    "seed": _I(default=1, lo=0),
+    "seed": _I(default=1, lo=0, hi=2**63 - 1),
     "dopants": _S(default="rounded", choices=("rounded", "poisson")),
+    "accuracy": _F(lo=0.0, lo_open=True),
+    "band_Hz": _Key("band"),
+    "max_seconds": _F(default=600.0, lo=0.0, lo_open=True),
 }
 _POPULATION = {
-    "frequencies_Hz": _Key("floatlist", required=True, lo=0.0, lo_open=True),
-    "threshold": _F(lo=0.0, lo_open=True),
+    "frequencies_Hz": _Key("floatlist", required=True, lo=0.0, lo_open=True, hi=1e15),
+    "threshold": _F(lo=0.0, lo_open=True, hi=1e300),
 }
 _READOUT = {
-    "bias_V": _F(required=True),
-    "length_cm": _F(required=True, lo=0.0, lo_open=True),
-    "electron_mobility_cm2_Vs": _F(lo=0.0),  # required without a [material] name
-    "hole_mobility_cm2_Vs": _F(lo=0.0),
+    "bias_V": _F(required=True, lo=-1e4, hi=1e4),
+    "length_cm": _F(required=True, lo=1e-8, hi=1e2),
+    "electron_mobility_cm2_Vs": _F(lo=0.0, hi=1e8),  # required without a [material] name
+    "hole_mobility_cm2_Vs": _F(lo=0.0, hi=1e8),
     "collection": _S(default="mean", choices=("mean", "events")),
     "band_Hz": _Key("band"),
 }
 _RESERVOIR = {
     "carrier": _S(required=True, choices=("electrons", "holes")),
-    "density_cm3": _F(required=True, lo=0.0),
+    "density_cm3": _F(required=True, lo=0.0, hi=DENSITY_MAX),
     "exchange_time_s": _F(lo=0.0, lo_open=True),
 }
 
@@ -449,6 +477,18 @@ def _fmt_bound(spec: _Key) -> str:
     if spec.lo is None:
         return ""
     return f"> {spec.lo:g}" if spec.lo_open else f">= {spec.lo:g}"
+
+
+def _check_range(value: float, spec: _Key, fail) -> None:
+    """Lower and upper bound of a number (upper bounds keep every derived quantity finite)."""
+    if spec.lo is not None:
+        bad = value <= spec.lo if spec.lo_open else value < spec.lo
+        if bad:
+            fail(f"must be {_fmt_bound(spec)}, got {value!r}")
+    if spec.hi is not None and value > spec.hi:
+        hi, got = (f"{spec.hi:d}", f"{value:d}") if spec.kind == "int" else (
+            f"{spec.hi:g}", f"{value:g}")
+        fail(f"must be <= {hi}, got {got} (beyond the range grmc computes in)")
 
 
 def _check_value(src: str, section: str, key: str, value: Any, spec: _Key) -> Any:
@@ -481,16 +521,11 @@ def _check_value(src: str, section: str, key: str, value: Any, spec: _Key) -> An
                 fail(f"expected numbers, got {v!r}")
             if v <= 0:
                 fail(f"every value must be > 0, got {v!r}")
+            _check_range(float(v), spec, fail)
             out.append(float(v))
         return tuple(sorted(out))
     elif spec.kind == "band":
-        if (not isinstance(value, list) or len(value) != 2
-                or any(isinstance(v, bool) or not isinstance(v, (int, float)) for v in value)):
-            fail(f"expected a list of two frequencies [f1, f2], got {value!r}")
-        f1, f2 = (float(v) for v in value)
-        if not (math.isfinite(f1) and math.isfinite(f2) and 0 < f1 < f2):
-            fail(f"must be two finite frequencies with 0 < f1 < f2, got {value!r}")
-        return (f1, f2)
+        return check_band(value, fail)
     elif spec.kind == "list3":
         if not isinstance(value, list) or len(value) != 3:
             fail(f"expected a list of three edge lengths, got {value!r}")
@@ -500,13 +535,28 @@ def _check_value(src: str, section: str, key: str, value: Any, spec: _Key) -> An
                 fail(f"expected numbers, got {v!r}")
             if v <= 0:
                 fail(f"every edge must be > 0, got {v!r}")
+            _check_range(float(v), spec, fail)
             out.append(float(v))
         return tuple(out)
-    if spec.lo is not None:
-        bad = value <= spec.lo if spec.lo_open else value < spec.lo
-        if bad:
-            fail(f"must be {_fmt_bound(spec)}, got {value!r}")
+    _check_range(value, spec, fail)
+    if key == "accuracy" and value >= 1.0:
+        fail(f"must be < 1 (a relative half-width, e.g. 0.05), got {value!r}")
     return value
+
+
+def check_band(value: Any, fail) -> tuple[float, float]:
+    """A frequency band [f1, f2] with 0 < f1 < f2 [Hz]; ``fail(message)`` raises."""
+    if not isinstance(value, (list, tuple)) or len(value) != 2:
+        fail(f"expected [f1, f2] in Hz, got {value!r}")
+    for v in value:
+        if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v):
+            fail(f"expected numbers, got {v!r}")
+    f1, f2 = float(value[0]), float(value[1])
+    if f1 <= 0:
+        fail(f"f1 must be > 0, got {f1!r}")
+    if f1 >= f2:
+        fail(f"f1 must be below f2, got [{f1!r}, {f2!r}]")
+    return f1, f2
 
 
 def _read_table(src: str, section: str, table: Any, schema: dict[str, _Key]) -> dict[str, Any]:
@@ -716,6 +766,47 @@ def _check_channels(src: str, material: Material, light: Light, traps: tuple[Tra
                             "light makes pairs but nothing recombines them (no radiative or "
                             "Auger coefficient, no trap level capturing both carriers): the "
                             "counts would grow without bound")
+
+
+def check_counts(scenario: Scenario) -> None:
+    """Refuse derived counts beyond the engine's exact range (:data:`COUNT_MAX`).
+
+    Each count is density x volume (or areal density x surface area); their sum bounds every
+    species the engine and the exact solver track (free carriers, occupied traps).  Called
+    by ``check``, ``run``, ``exact``, ``sweep`` and :func:`grmc.simulate.run` (the continuum
+    alone may still be asked about a larger volume from Python).
+
+    Raises
+    ------
+    ScenarioError  Naming the key of the largest contribution.
+    """
+    src, material, volume = scenario.source, scenario.material, scenario.volume
+    traps, start = scenario.traps, scenario.start
+    vol = volume.volume_cm3
+    if vol < VOLUME_MIN:
+        raise ScenarioError(src, "volume", "size_nm", f"the box is {vol:.3g} cm^3, smaller "
+                            f"than {VOLUME_MIN:g} cm^3 (less than one atom)")
+    parts = [
+        ("material", "intrinsic_density_cm3", material.intrinsic_density_cm3 * vol),
+        ("material", "donors_cm3", material.donors_cm3 * vol),
+        ("material", "acceptors_cm3", material.acceptors_cm3 * vol),
+        ("start", "excess_pairs", 2.0 * start.excess_pairs),  # an electron and a hole each
+    ]
+    for trap in traps:
+        section = f"traps.{trap.label}"
+        if trap.count is not None:
+            parts.append((section, "count", float(trap.count)))
+        elif trap.density_cm3 is not None:
+            parts.append((section, "density_cm3", trap.density_cm3 * vol))
+        else:
+            parts.append((section, "areal_density_cm2",
+                          trap.areal_density_cm2 * (volume.surface_area_cm2 or 0.0)))
+    total = sum(p[2] for p in parts)
+    if total > COUNT_MAX:
+        section, key, biggest = max(parts, key=lambda p: p[2])
+        raise ScenarioError(src, section, key, f"gives {biggest:.3g} particles in the volume "
+                            f"(all counts together {total:.3g}), beyond the {COUNT_MAX:.3g} "
+                            "the event engine counts exactly; use a smaller volume")
 
 
 def parse_scenario(data: dict[str, Any], *, source: str = "<string>", text: str = "") -> Scenario:

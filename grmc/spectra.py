@@ -49,6 +49,7 @@ __all__ = [
     "LorentzianFit",
     "SpectrumAnalysis",
     "analyse_spectrum",
+    "drive_line_mask",
     "choose_segments",
     "cross_periodogram",
     "current_psd_from_matrix",
@@ -656,8 +657,10 @@ def _prepare(
     n_segments: float | None,
     band: tuple[float, float] | None,
     level: float,
+    exclude: np.ndarray | None = None,
 ) -> tuple[np.ndarray, np.ndarray, float, np.ndarray]:
-    """Usable points: finite, f > 0, S > 0, inside the band.  Returns f, S, K, mask."""
+    """Usable points: finite, f > 0, S > 0, inside the band, not excluded (``exclude`` True,
+    e.g. :func:`drive_line_mask`).  Returns f, S, K, mask."""
     f = np.asarray(freqs, dtype=float)
     s = np.asarray(psd, dtype=float)
     if f.shape != s.shape or f.ndim != 1:
@@ -671,7 +674,41 @@ def _prepare(
     keep = np.isfinite(f) & np.isfinite(s) & (f > 0) & (s > 0)
     if band is not None:
         keep &= (f >= band[0]) & (f <= band[1])
+    if exclude is not None:
+        keep &= ~np.asarray(exclude, dtype=bool)
     return f[keep], s[keep], float(n_segments), keep
+
+
+#: Fourier bins on each side of a drive line (and of each harmonic) left out of the fits: the
+#: line of a drive whose frequency is not on the segment's Fourier grid leaks into its
+#: neighbours as sinc^2 (rectangular window; Harris, Proc. IEEE 66, 51, 1978), about 1/(pi m)^2
+#: of its power m bins away.
+DRIVE_LINE_HALF_WIDTH = 3
+
+
+def drive_line_mask(freqs: np.ndarray, drive_Hz: float | None, *,
+                    half_width: int = DRIVE_LINE_HALF_WIDTH) -> np.ndarray:
+    """Frequencies within ``half_width`` bins of a drive frequency or of one of its
+    harmonics k f_d (k = 1, 2, ...), which a modulated source puts into the spectrum as
+    deterministic lines, not noise (a square wave has odd harmonics, and a nonlinear
+    response adds even ones).
+
+    Parameters
+    ----------
+    freqs : ndarray  Uniform frequency grid of the spectrum [Hz]
+    drive_Hz : float or None  Drive frequency f_d; None or 0: no drive [Hz]
+    half_width : int  Bins left out on each side [1]
+
+    Returns
+    -------
+    ndarray of bool  True where a point is to be left out of a Lorentzian fit
+    """
+    f = np.asarray(freqs, dtype=float)
+    if not drive_Hz or drive_Hz <= 0 or f.size < 2:
+        return np.zeros(f.shape, dtype=bool)
+    df = float(np.median(np.diff(f)))
+    nearest = np.maximum(np.rint(f / drive_Hz), 1.0) * drive_Hz  # the closest harmonic
+    return np.abs(f - nearest) <= (half_width + 0.5) * df
 
 
 def _log_noise(k: float) -> tuple[float, float, float]:
@@ -968,6 +1005,25 @@ def _jackknife_var(
     return (b - 1) / b * np.sum((th - th.mean(axis=0)) ** 2, axis=0)
 
 
+def _batches_kept(batches: np.ndarray | None, keep: np.ndarray) -> np.ndarray | None:
+    """The batch periodograms at the kept frequencies (checked for shape)."""
+    if batches is None:
+        return None
+    bat = np.asarray(batches, dtype=float)
+    if bat.ndim != 2 or bat.shape[1] != keep.size or bat.shape[0] < 2:
+        raise ValueError(f"batches must have shape (B >= 2, {keep.size}), got {bat.shape}")
+    return bat[:, keep]
+
+
+def _analysis(kind: Any, comps: Any, fit: _Fit | None, band: tuple[float, float], k: float,
+              msg: str) -> SpectrumAnalysis:
+    nan = float("nan")
+    return SpectrumAnalysis(kind=kind, components=tuple(comps),
+                            chi2_dof=fit.chi2 / fit.dof if fit is not None else nan,
+                            p_value=fit.p_value if fit is not None else nan, band=band,
+                            n_segments=k, message=msg)
+
+
 def analyse_spectrum(
     freqs: np.ndarray,
     psd: np.ndarray,
@@ -979,6 +1035,7 @@ def analyse_spectrum(
     band: tuple[float, float] | None = None,
     level: float = 0.95,
     batches: np.ndarray | None = None,
+    drive_Hz: float | None = None,
 ) -> SpectrumAnalysis:
     """Describe a G-R spectrum estimate by one or two Lorentzians, or refuse.
 
@@ -996,6 +1053,8 @@ def analyse_spectrum(
         equally many segments (e.g. groups of trajectories) whose mean is ``psd``.  Then the
         standard errors are jackknife errors over the batches, valid also for non-Gaussian
         signals (see :func:`fit_lorentzian`); B >= 8 advised [unit^2/Hz]
+    drive_Hz : float, optional  Frequency of a periodic drive: its line and harmonics are
+        left out of the fit (:func:`drive_line_mask`) [Hz]
 
     Returns
     -------
@@ -1010,7 +1069,8 @@ def analyse_spectrum(
     "Bias and confidence in not-quite large samples", Ann. Math. Statist. 29, 614 (1958)
     (abstract; from memory).
     """
-    f, s, k, keep = _prepare(freqs, psd, low, high, n_segments, band, level)
+    f, s, k, keep = _prepare(freqs, psd, low, high, n_segments, band, level,
+                             drive_line_mask(freqs, drive_Hz))
     if isinstance(segment_duration, str):
         if segment_duration != "auto":
             raise ValueError(
@@ -1019,25 +1079,12 @@ def analyse_spectrum(
         t_seg = _fourier_segment_duration(np.asarray(freqs, dtype=float))
     else:
         t_seg = segment_duration
-    bat = None
-    if batches is not None:
-        bat = np.asarray(batches, dtype=float)
-        if bat.ndim != 2 or bat.shape[1] != keep.size or bat.shape[0] < 2:
-            raise ValueError(f"batches must have shape (B >= 2, {keep.size}), got {bat.shape}")
-        bat = bat[:, keep]
+    bat = _batches_kept(batches, keep)
     nan = float("nan")
     band_used = (float(f[0]), float(f[-1])) if f.size else (nan, nan)
 
     def result(kind: Any, comps: Any, fit: _Fit | None, msg: str) -> SpectrumAnalysis:
-        return SpectrumAnalysis(
-            kind=kind,
-            components=tuple(comps),
-            chi2_dof=fit.chi2 / fit.dof if fit is not None else nan,
-            p_value=fit.p_value if fit is not None else nan,
-            band=band_used,
-            n_segments=k,
-            message=msg,
-        )
+        return _analysis(kind, comps, fit, band_used, k, msg)
 
     def with_errors(fit: _Fit) -> tuple[tuple[LorentzianFit, ...], str]:
         if bat is None:

@@ -12,15 +12,16 @@ import math
 import numpy as np
 
 from . import continuum
+from .cost import WARN_EVENTS, cost_warnings, estimate
 from .model import build_model, nominal_counts, trap_means
-from .scenario import Scenario
+from .scenario import Scenario, check_counts
 
 __all__ = ["summarize", "format_summary", "FEW_CARRIERS", "TOO_MANY_EVENTS"]
 
 #: Below this mean count a continuum answer is not to be trusted (common practice).
 FEW_CARRIERS = 10.0
 #: Above this many events a run is too long to be practical on one machine.
-TOO_MANY_EVENTS = 1.0e10
+TOO_MANY_EVENTS = WARN_EVENTS
 #: Rounding a density to a count may move it by this fraction before we warn.
 ROUNDING_TOLERANCE = 0.05
 
@@ -35,6 +36,7 @@ def summarize(scenario: Scenario) -> dict:
     ``relaxation_times_s``, ``event_rate_per_trajectory_s`` [1/s], ``expected_events``,
     ``warnings`` (list of str).
     """
+    check_counts(scenario)
     model = build_model(scenario)
     counts = nominal_counts(scenario)
     warnings: list[str] = []
@@ -71,11 +73,7 @@ def summarize(scenario: Scenario) -> dict:
                 f"{name}: continuum mean count {mean:.3g} is below {FEW_CARRIERS:g}; the "
                 "continuum and linear-noise answers are not to be trusted here"
             )
-    if events > TOO_MANY_EVENTS:
-        warnings.append(
-            f"the run needs about {events:.2g} events (more than {TOO_MANY_EVENTS:.0e}); "
-            "shorten duration_s or use fewer trajectories"
-        )
+    warnings.extend(cost_warnings(estimate(scenario, model, rate)))
     times = [float(t) for t in lna.relaxation_times]
     if times and run.duration_s < 20.0 * max(times):
         warnings.append(
@@ -154,6 +152,8 @@ def _current(model) -> float | None:
 
 
 def _eng(x: float) -> str:
+    if math.isnan(x):
+        return "-"
     if x == 0 or not math.isfinite(x):
         return f"{x:g}"
     return f"{x:.4g}"
@@ -194,9 +194,9 @@ def format_summary(info: dict) -> str:
     for s in info["species"]:
         m = info["steady_continuum"][s]
         v = info["var_lna"][s]
-        fano = v / m if m > 0 else float("nan")
+        fano = f"{v / m:.3f}" if m > 0 and math.isfinite(v / m) else "-"
         lines.append(f"  {s:<22}{_eng(m):>16}{_eng(info['steady_density_cm3'][s]):>18}"
-                     f"{_eng(v):>14}{fano:>8.3f}{info['start_state'][s]:>10}")
+                     f"{_eng(v):>14}{fano:>8}{info['start_state'][s]:>10}")
     lines.append("")
     if info["relaxation_times_s"]:
         times = ", ".join(_eng(t) for t in info["relaxation_times_s"])

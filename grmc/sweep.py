@@ -30,12 +30,16 @@ Lorentzian this is its time constant; van Vliet, Proc. IRE 46, 1004, 1958 - from
 
 from __future__ import annotations
 
+import contextlib
 import dataclasses
 import hashlib
 import itertools
 import json
+import logging
 import math
+import signal
 import tomllib
+from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -43,15 +47,18 @@ from typing import Any
 import numpy as np
 
 from .atomic import write_text_atomic
-from .scenario import SCHEMA, Scenario, ScenarioError, parse_scenario, set_key
+from .result import DEVIATION_THRESHOLD, crossing_count
+from .scenario import (SCHEMA, Scenario, ScenarioError, check_counts, parse_scenario,
+                       set_key)
 
-__all__ = ["Vary", "parse_vary", "sweep_points", "point_scenario", "evaluate_point",
-           "run_sweep", "assemble", "crossing_count", "EXACT_STATE_LIMIT"]
+__all__ = ["Vary", "parse_vary", "round_integers", "parts_dir", "sweep_points", "point_scenario",
+           "evaluate_point", "run_sweep", "SchedulerUnreachable", "assemble", "crossing_count",
+           "EXACT_STATE_LIMIT"]
 
+#: Seconds to wait for a Dask scheduler given by ``--scheduler`` before giving up.
+CONNECT_TIMEOUT_S = 2.0
 #: Largest exact state space a sweep point uses before it falls back to Monte Carlo.
 EXACT_STATE_LIMIT = 200_000
-#: A relative deviation of this size marks where the continuum answer fails.
-DEVIATION_THRESHOLD = 0.10
 #: Frequencies of the readout noise recorded per point unless ``--frequency`` is given [Hz].
 DEFAULT_NOISE_FREQUENCIES = (1.0e3,)
 
@@ -76,6 +83,7 @@ def parse_vary(text: str) -> Vary:
         raise ValueError(f"{text!r}: expected KEY=START:STOP:N[:log]")
     key, spec = text.split("=", 1)
     key = key.strip()
+    _check_key_form(text, key)
     parts = spec.split(":")
     if len(parts) not in (3, 4) or (len(parts) == 4 and parts[3] not in ("log", "lin")):
         raise ValueError(f"{text!r}: expected KEY=START:STOP:N[:log]")
@@ -96,6 +104,48 @@ def parse_vary(text: str) -> Vary:
     return Vary(key=key, values=tuple(float(v) for v in values), log=log)
 
 
+def _check_key_form(text: str, key: str) -> None:
+    """Refuse a key without its section, naming the section that holds it."""
+    parts = key.split(".")
+    if len(parts) == 2 or (len(parts) == 3 and parts[0] == "traps"):
+        return
+    if len(parts) == 1:
+        home = [sec for sec, table in SCHEMA.items() if key in table]
+        hint = (f"; write {home[0]}.{key}" if home and home[0] != "traps"
+                else f"; write traps.<label>.{key}" if home else "")
+        raise ValueError(f"{text!r}: the key {key!r} needs its section, as section.key "
+                         f"or traps.<label>.key{hint}")
+    raise ValueError(f"{text!r}: expected section.key or traps.<label>.key before '='")
+
+
+def _spec_of(key: str):
+    parts = key.split(".")
+    section, name = ("traps", parts[2]) if parts[0] == "traps" and len(parts) == 3 else parts
+    return SCHEMA.get(section, {}).get(name)
+
+
+def round_integers(vary: Vary) -> tuple[Vary, str | None]:
+    """Round the values swept into an integer key (counts, samples, seeds).
+
+    Returns
+    -------
+    (Vary, str or None)  The sweep with the values that will run, and a warning listing the
+        values that were rounded (None when none was).
+    """
+    spec = _spec_of(vary.key)
+    if spec is None or spec.kind != "int":
+        return vary, None
+    rounded = tuple(float(math.floor(v + 0.5)) for v in vary.values)
+    changed = [(v, r) for v, r in zip(vary.values, rounded) if v != r]
+    if not changed:
+        return vary, None
+    shown = ", ".join(f"{v:g} -> {r:g}" for v, r in changed[:4]) + (
+        ", ..." if len(changed) > 4 else "")
+    note = (f"--vary {vary.key}: an integer key; rounded {shown} (the file records the "
+            "values that ran)")
+    return dataclasses.replace(vary, values=rounded), note
+
+
 def sweep_points(varies: list[Vary]) -> list[dict[str, float]]:
     """All combinations, the first ``--vary`` varying slowest."""
     return [dict(zip([v.key for v in varies], combo))
@@ -103,9 +153,7 @@ def sweep_points(varies: list[Vary]) -> list[dict[str, float]]:
 
 
 def _typed(key: str, value: float) -> Any:
-    parts = key.split(".")
-    section, name = ("traps", parts[2]) if parts[0] == "traps" and len(parts) == 3 else parts
-    spec = SCHEMA.get(section, {}).get(name)
+    spec = _spec_of(key)
     if spec is None:
         return value
     if spec.kind == "int":
@@ -123,6 +171,7 @@ def point_scenario(scenario: Scenario, assignment: dict[str, float]) -> Scenario
     for key, value in assignment.items():
         set_key(data, key, _typed(key, value), source=scenario.source)
     scen = parse_scenario(data, source=src, text=scenario.text)
+    check_counts(scen)
     return scen
 
 
@@ -131,17 +180,20 @@ def _point_seed(seed: int, index: int) -> int:
     return int(ss.generate_state(1, np.uint32)[0])
 
 
-def _lna_tau(model) -> tuple[np.ndarray, np.ndarray, float]:
+def _lna_tau(model) -> tuple[np.ndarray, np.ndarray, np.ndarray, float]:
+    """Continuum steady state, linear-noise variance and spectral time constant S(0)/(4 var)
+    (at f0, four decades below the slowest corner) from :func:`grmc.theory.theory`."""
     from . import continuum
+    from .theory import theory
 
-    lna = continuum.lna(model)
-    var = np.diag(lna.covariance).copy()
-    times = np.asarray(lna.relaxation_times, dtype=float)
+    th = theory(model)
+    var = th.variables["var_lna"][1]
+    times = th.variables["relaxation_time_lna"][1]
     f0 = 1e-4 / (2 * math.pi * times.max()) if times.size else 1.0
     s0 = np.real(np.einsum("iif->if", continuum.lna_psd(model, np.array([f0]))))[:, 0]
     with np.errstate(divide="ignore", invalid="ignore"):
         tau = np.where(var > 0, s0 / (4 * var), np.nan)
-    return var, tau, f0
+    return th.steady, var, tau, f0
 
 
 def evaluate_point(scenario: Scenario, index: int, *, exact_limit: int = EXACT_STATE_LIMIT,
@@ -156,12 +208,11 @@ def evaluate_point(scenario: Scenario, index: int, *, exact_limit: int = EXACT_S
     without a library material); with a ``[readout]`` the lists ``current_psd``,
     ``current_psd_lna`` and ``current_psd_photon`` at ``noise_frequencies`` [A^2/Hz].
     """
-    from . import continuum, exact
+    from . import exact
     from .model import build_model
 
     model = build_model(scenario)
-    ss = continuum.steady_state(model)
-    var_lna, tau_lna, f0 = _lna_tau(model)
+    ss, var_lna, tau_lna, f0 = _lna_tau(model)
     noise_f = np.asarray(noise_frequencies, dtype=float)
     out: dict[str, Any] = {"index": index, "species": list(model.species)}
     current = None
@@ -179,8 +230,10 @@ def evaluate_point(scenario: Scenario, index: int, *, exact_limit: int = EXACT_S
                    var=res.var, var_err=zeros, tau=tau, tau_err=zeros,
                    probability_outside=float(res.mass_outside))
     except exact.StateSpaceTooLarge:
+        from .cost import refuse_absurd, run_cost
         from .simulate import run
 
+        refuse_absurd(scenario, run_cost(scenario))  # a point that could never finish
         seed = _point_seed(scenario.run.seed, index)
         ds = run(scenario, seed=seed, workers=1, progress=False)
         var = ds["stationary_var"].values
@@ -240,14 +293,91 @@ def _atomic_json(path: Path, obj) -> None:
     write_text_atomic(path, json.dumps(obj))
 
 
-def _parts_dir(out: Path) -> Path:
+def parts_dir(out: Path) -> Path:
+    """The folder beside a sweep file that keeps its finished points until it is written."""
     return out.with_name(out.name + ".parts")
+
+
+class SchedulerUnreachable(ConnectionError):
+    """No Dask scheduler answers at the address given (an environment failure)."""
+
+
+@contextlib.contextmanager
+def _sigint_ignored():
+    """Start worker processes with Ctrl-C ignored: an interruption reaches the whole process
+    group, and only this process should answer it (the workers are closed from here).  A
+    process started with SIGINT ignored keeps it ignored (POSIX exec semantics)."""
+    try:
+        previous = signal.signal(signal.SIGINT, signal.SIG_IGN)
+    except ValueError:  # not the main thread
+        yield
+        return
+    try:
+        yield
+    finally:
+        signal.signal(signal.SIGINT, previous)
+
+
+def _connect(scheduler: str | None, workers: int | None, n_tasks: int):
+    """A Dask client (and the LocalCluster it owns, or None)."""
+    from dask.distributed import Client, LocalCluster
+
+    from .engine.ensemble import default_workers
+
+    if scheduler:
+        try:
+            return Client(scheduler, timeout=CONNECT_TIMEOUT_S), None
+        except (OSError, ValueError, TypeError) as exc:
+            raise SchedulerUnreachable(
+                f"--scheduler {scheduler}: no Dask scheduler answered within "
+                f"{CONNECT_TIMEOUT_S:g} s ({exc})") from None
+    n = workers or default_workers()
+    # the cluster's own log lines (a cancelled task, a worker killed on closing, a point's
+    # refusal) would follow the one line grmc prints: every failure of a point comes back
+    # to this process as its exception, so the cluster's logs are kept quiet
+    logging.getLogger("distributed").setLevel(logging.CRITICAL)
+    with _sigint_ignored():
+        cluster = LocalCluster(n_workers=min(n, n_tasks), threads_per_worker=1,
+                               dashboard_address=None, processes=True,
+                               silence_logs=logging.CRITICAL,
+                               # the scheduler's small HTTP server on a free local port (its
+                               # default, 8787, may be taken by another cluster on the machine)
+                               scheduler_kwargs={"dashboard_address": "127.0.0.1:0"})
+    return Client(cluster), cluster
+
+
+def _open_parts(parts: Path, sig: str, n_points: int, resume: bool, out: Path) -> dict:
+    """The points an earlier run of the same sweep finished (creating the folder if new)."""
+    manifest = parts / "manifest.json"
+    done: dict[int, dict] = {}
+    if parts.exists():
+        old = json.loads(manifest.read_text()) if manifest.exists() else {}
+        if not resume:
+            raise ScenarioError(str(out), "", "", f"an unfinished sweep is in {parts}; "
+                                "add --resume to continue it or delete that folder")
+        if old.get("signature") != sig:
+            raise ScenarioError(str(out), "", "", f"{parts} belongs to a different sweep "
+                                "(scenario or --vary changed); delete it to start afresh")
+        for f in sorted(parts.glob("point_*.json")):
+            res = json.loads(f.read_text())
+            done[int(res["index"])] = res
+    else:
+        parts.mkdir(parents=True)
+        _atomic_json(manifest, {"signature": sig, "points": n_points})
+    return done
+
+
+def _remove_parts(parts: Path) -> None:
+    for f in parts.iterdir():  # including temporary files an interruption left behind
+        f.unlink()
+    parts.rmdir()
 
 
 def run_sweep(scenario: Scenario, varies: list[Vary], out: str | Path, *,
               scheduler: str | None = None, resume: bool = False, workers: int | None = None,
               command: str | None = None, max_points: int | None = None,
-              noise_frequencies: tuple[float, ...] | None = None) -> Path:
+              noise_frequencies: tuple[float, ...] | None = None,
+              on_point: Callable[[dict], None] | None = None) -> Path | None:
     """Run every sweep point on Dask and write the stacked file.
 
     Parameters
@@ -264,6 +394,7 @@ def run_sweep(scenario: Scenario, varies: list[Vary], out: str | Path, *,
         unfinished, as an interruption would; used to test ``resume``)
     noise_frequencies : tuple of float, optional  Frequencies of the readout noise recorded
         per point (default :data:`DEFAULT_NOISE_FREQUENCIES`) [Hz]
+    on_point : callable, optional  Called with each point's result as it finishes
 
     Returns
     -------
@@ -272,9 +403,9 @@ def run_sweep(scenario: Scenario, varies: list[Vary], out: str | Path, *,
     Raises
     ------
     ScenarioError  A swept key or value the scenario format rejects.
+    SchedulerUnreachable  No scheduler at ``scheduler`` (nothing is left behind).
     """
     from .dataset import save
-    from .engine.ensemble import default_workers
 
     out = Path(out)
     noise_f = tuple(sorted(noise_frequencies or DEFAULT_NOISE_FREQUENCIES))
@@ -282,49 +413,35 @@ def run_sweep(scenario: Scenario, varies: list[Vary], out: str | Path, *,
     # validate every point before anything runs (bad keys and values exit 2, nothing written)
     for assignment in points:
         point_scenario(scenario, assignment)
-    parts = _parts_dir(out)
-    sig = _signature(scenario, varies, noise_f)
-    manifest = parts / "manifest.json"
-    done: dict[int, dict] = {}
-    if parts.exists():
-        old = json.loads(manifest.read_text()) if manifest.exists() else {}
-        if not resume:
-            raise ScenarioError(str(out), "", "", f"an unfinished sweep is in {parts}; "
-                                "add --resume to continue it or delete that folder")
-        if old.get("signature") != sig:
-            raise ScenarioError(str(out), "", "", f"{parts} belongs to a different sweep "
-                                "(scenario or --vary changed); delete it to start afresh")
-        for f in sorted(parts.glob("point_*.json")):
-            res = json.loads(f.read_text())
-            done[int(res["index"])] = res
-    else:
-        parts.mkdir(parents=True)
-        _atomic_json(manifest, {"signature": sig, "points": len(points)})
-
+    parts = parts_dir(out)
+    fresh = not parts.exists()
+    done = _open_parts(parts, _signature(scenario, varies, noise_f), len(points), resume, out)
     todo = [i for i in range(len(points)) if i not in done]
     if max_points is not None:
         todo = todo[:max_points]
     if todo:
-        from dask.distributed import Client, LocalCluster, as_completed
+        from dask.distributed import as_completed
 
-        cluster = None
-        if scheduler:
-            client = Client(scheduler)
-        else:
-            n = workers or default_workers()
-            # no dashboard; the scheduler's small HTTP server listens on a free local port
-            # (its default, 8787, may be taken by another cluster on the machine)
-            cluster = LocalCluster(n_workers=min(n, len(todo)), threads_per_worker=1,
-                                   dashboard_address=None, processes=True,
-                                   scheduler_kwargs={"dashboard_address": "127.0.0.1:0"})
-            client = Client(cluster)
+        try:
+            client, cluster = _connect(scheduler, workers, len(todo))
+        except SchedulerUnreachable:
+            if fresh:  # nothing was computed: leave nothing behind
+                _remove_parts(parts)
+            raise
         try:
             futures = [client.submit(_evaluate_task, scenario, points[i], i, noise_f,
                                      pure=False) for i in todo]
             for fut in as_completed(futures):
-                res = fut.result()
+                try:
+                    res = fut.result()
+                except ScenarioError:  # a point refused: keep only what other points finished
+                    if fresh and not done:
+                        _remove_parts(parts)
+                    raise
                 _atomic_json(parts / f"point_{res['index']:05d}.json", res)
                 done[int(res["index"])] = res
+                if on_point is not None:
+                    on_point(res)
         finally:
             client.close()
             if cluster is not None:
@@ -334,9 +451,7 @@ def run_sweep(scenario: Scenario, varies: list[Vary], out: str | Path, *,
     ds = assemble(scenario, varies, [done[i] for i in range(len(points))], command=command,
                   noise_frequencies=noise_f)
     save(ds, out)
-    for f in parts.iterdir():  # including temporary files an interruption left behind
-        f.unlink()
-    parts.rmdir()
+    _remove_parts(parts)
     return out
 
 
@@ -357,12 +472,11 @@ def assemble(scenario: Scenario, varies: list[Vary], results: list[dict], *,
     for name in ("mean", "mean_err", "var", "var_err", "tau", "tau_err", "continuum",
                  "var_lna", "tau_lna"):
         data[name] = stack(name)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        dev = {
-            "mean": (data["mean"] / data["continuum"] - 1, data["mean_err"] / data["continuum"]),
-            "var": (data["var"] / data["var_lna"] - 1, data["var_err"] / data["var_lna"]),
-            "tau": (data["tau"] / data["tau_lna"] - 1, data["tau_err"] / data["tau_lna"]),
-        }
+    dev = {
+        "mean": _relative(data["mean"], data["mean_err"], data["continuum"]),
+        "var": _relative(data["var"], data["var_err"], data["var_lna"]),
+        "tau": _relative(data["tau"], data["tau_err"], data["tau_lna"]),
+    }
     sw = ("sweep", "species")
     variables = {
         "stationary_mean": (sw, data["mean"]),
@@ -410,6 +524,17 @@ def assemble(scenario: Scenario, varies: list[Vary], results: list[dict], *,
     return ds
 
 
+def _relative(value: np.ndarray, err: np.ndarray, reference: np.ndarray
+              ) -> tuple[np.ndarray, np.ndarray]:
+    """value / reference - 1 and its standard error; 0 where both are exactly 0 (a trap level
+    with no traps: nothing fluctuates and every answer agrees)."""
+    both_zero = (value == 0) & (reference == 0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        dev = np.where(both_zero, 0.0, value / reference - 1)
+        dev_err = np.where(both_zero, err, err / reference)
+    return dev, dev_err
+
+
 def _key_units(key: str) -> str:
     """UDUNITS string from the unit suffix of a scenario key."""
     suffixes = {"_cm3": "cm-3", "_cm3_s": "cm3 s-1", "_cm6_s": "cm6 s-1", "_cm2": "cm2",
@@ -424,21 +549,3 @@ def _key_units(key: str) -> str:
         if name.endswith(suffix):
             return units
     return "1"
-
-
-def crossing_count(mean_count: np.ndarray, deviation: np.ndarray,
-                   threshold: float = DEVIATION_THRESHOLD) -> float | None:
-    """Mean count at which |deviation| falls through ``threshold`` (log-interpolated).
-
-    Returns the largest count where the deviation, coming from large counts, first exceeds the
-    threshold; None when it never crosses within the sweep.
-    """
-    order = np.argsort(mean_count)[::-1]
-    x = np.asarray(mean_count, dtype=float)[order]
-    y = np.abs(np.asarray(deviation, dtype=float)[order])
-    for k in range(1, len(x)):
-        if y[k - 1] < threshold <= y[k] and x[k] > 0 and x[k - 1] > 0:
-            ly0, ly1 = math.log(max(y[k - 1], 1e-300)), math.log(y[k])
-            w = (math.log(threshold) - ly0) / (ly1 - ly0) if ly1 != ly0 else 0.0
-            return float(math.exp(math.log(x[k - 1]) + w * (math.log(x[k]) - math.log(x[k - 1]))))
-    return None

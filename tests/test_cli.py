@@ -141,8 +141,15 @@ def test_exact_command_writes_the_contract(tmp_path, capsys):
     path = _write(tmp_path, SMALL)
     out = tmp_path / "exact.nc"
     assert main(["exact", str(path), "-o", str(out)]) == 0
-    assert "probability outside" in capsys.readouterr().out
+    printed = capsys.readouterr().out
+    assert "probability outside" in printed
     ds = load(out)
+    # the exact mean and variance of each species beside the continuum and LNA values
+    for i, name in enumerate(ds["species"].values):
+        row = [ln.split() for ln in printed.splitlines() if ln.split()[:1] == [str(name)]][0]
+        exact_mean, continuum = float(row[1]), float(row[3])
+        assert exact_mean == pytest.approx(float(ds["stationary_mean"][i]), rel=1e-5)
+        assert continuum == pytest.approx(float(ds["steady_continuum"][i]), rel=1e-5)
     for name in ("stationary_mean", "stationary_var", "steady_continuum", "var_lna", "psd",
                  "psd_lna"):
         assert name in ds, name
@@ -165,7 +172,8 @@ def test_run_plot_export_round(tmp_path, capsys):
     assert "MC mean" in printed and "continuum" in printed and f"wrote {out}" in printed
     csv = tmp_path / "i.csv"
     assert main(["export", str(out), "--format", "csv", "-o", str(csv)]) == 0
-    assert "A^2/Hz" in csv.read_text() or "A2" in csv.read_text()
+    # the header names the units of the columns as written (A^2/Hz for a current)
+    assert "# units: frequency in Hz; spectral densities in A^2/Hz\n" in csv.read_text()
     va = tmp_path / "i.va"
     assert main(["export", str(out), "--format", "verilog-a", "-o", str(va)]) == 0
     f, s = read_noise_table(va)

@@ -1,8 +1,9 @@
 """Tests of grmc.plotting: every figure is written as a valid PNG of sensible size.
 
-The synthetic Dataset uses the docs/file-format.md names: Lorentzian spectra (van Vliet, Proc. IRE
-46, 1004, 1958, from memory) with Welch chi-squared intervals (IEEE Trans. Audio
-Electroacoust. 15, 70, 1967), a transient relaxing exponentially toward the steady state
+The synthetic Dataset is built like a real file: the registry's names and units
+(grmc.dataset.finish), the species and channel names of a real model, and Lorentzian
+spectra (van Vliet, Proc. IRE 46, 1004, 1958, from memory) with Welch chi-squared intervals
+(IEEE Trans. Audio Electroacoust. 15, 70, 1967), a transient relaxing exponentially toward the steady state
 (low-injection decay, common practice), Poisson/binomial count histograms.
 """
 
@@ -18,12 +19,31 @@ import xarray as xr
 from scipy import stats
 
 from grmc import plotting, spectra
+from grmc.dataset import finish
+from grmc.model import build_model
+from grmc.scenario import load_scenario
 
 K = 16
-SPECIES = ["electrons", "holes", "trapped:deep"]
-CHANNELS = ["thermal pair generation", "radiative recombination", "deep: electron capture",
-            "deep: electron emission", "deep: hole capture", "deep: hole emission",
-            "Auger e-e-h"]
+SCENARIO = """
+title = "box with three deep traps"
+[material]
+temperature_K = 300.0
+intrinsic_density_cm3 = 1.0e10
+radiative_cm3_s = 1.0e-10
+auger_electron_cm6_s = 1.0e-30
+donors_cm3 = 1.0e17
+[volume]
+volume_cm3 = 1.0e-15
+[[traps]]
+label = "deep"
+count = 3
+energy_eV = 0.1
+electron_capture_cm3_s = 1.0e-8
+hole_capture_cm3_s = 1.0e-8
+"""
+MODEL = build_model(load_scenario(text=SCENARIO))
+SPECIES = list(MODEL.species)
+CHANNELS = list(MODEL.channel_names)
 
 
 def make_dataset(seed: int = 0) -> xr.Dataset:
@@ -45,29 +65,30 @@ def make_dataset(seed: int = 0) -> xr.Dataset:
     hist = np.stack([stats.poisson.pmf(values, 40.0), stats.poisson.pmf(values, 40.0),
                      stats.binom.pmf(values, 3, 1.6 / 3)])
     hist_mc = hist * rng.chisquare(200, hist.shape) / 200
-    rates = np.array([3e5, 3e5, 2.1e8, 2.0e8, 1.1e8, 1.2e8, 0.0])
+    rates = np.geomspace(3e5, 2e8, len(CHANNELS))
+    rates[-1] = 0.0  # a channel that never fired
     a = 1.6e-14
     ds = xr.Dataset(
         {
-            "count_mean": (("species", "t"), cmean, {"units": "1"}),
-            "count_var": (("species", "t"), cvar, {"units": "1"}),
-            "count_continuum": (("species", "t"), relax, {"units": "1"}),
-            "psd": (("species", "frequency"), psd, {"units": "Hz-1"}),
-            "psd_low": (("species", "frequency"), low, {"units": "Hz-1"}),
-            "psd_high": (("species", "frequency"), high, {"units": "Hz-1"}),
-            "psd_lna": (("species", "frequency"), lna, {"units": "Hz-1"}),
-            "current_psd": ("frequency", a**2 * psd[0], {"units": "A2 Hz-1"}),
-            "current_psd_lna": ("frequency", a**2 * lna[0], {"units": "A2 Hz-1"}),
-            "current_mean": ((), a * 40.0, {"units": "A"}),
-            "event_rate": ("channel", rates, {"units": "s-1"}),
-            "count_histogram": (("species", "count_value"), hist_mc, {"units": "1"}),
-            "count_histogram_exact": (("species", "count_value"), hist, {"units": "1"}),
+            "count_mean": (("species", "t"), cmean),
+            "count_var": (("species", "t"), cvar),
+            "count_continuum": (("species", "t"), relax),
+            "psd": (("species", "frequency"), psd),
+            "psd_low": (("species", "frequency"), low),
+            "psd_high": (("species", "frequency"), high),
+            "psd_lna": (("species", "frequency"), lna),
+            "current_psd": ("frequency", a**2 * psd[0]),
+            "current_psd_lna": ("frequency", a**2 * lna[0]),
+            "current_mean": ((), a * 40.0),
+            "event_rate": ("channel", rates),
+            "count_histogram": (("species", "count_value"), hist_mc),
+            "count_histogram_exact": (("species", "count_value"), hist),
         },
-        coords={"t": ("t", t, {"units": "s"}), "frequency": ("frequency", f, {"units": "Hz"}),
+        coords={"t": ("t", t), "frequency": ("frequency", f),
                 "species": SPECIES, "channel": CHANNELS, "count_value": values},
-        attrs={"title": "box with three deep traps", "trajectories": n_traj},
     )
-    return ds
+    return finish(ds, title="box with three deep traps", scenario_toml=SCENARIO,
+                  command="test", trajectories=n_traj)
 
 
 def png_size(path) -> tuple[int, int]:
@@ -124,7 +145,7 @@ def test_functions_take_and_return_ax():
     f_c = lines[0].get_xdata()[0]
     assert f_c == pytest.approx(1 / (2 * np.pi * 1.5e-7), rel=0.1)
     # a corner stored in the file is used as it is
-    ds["corner_frequency"] = ("species", [1e6, 2e6, 3e6], {"units": "Hz"})
+    ds["corner_frequency"] = (("species", "component"), [[1e6], [2e6], [3e6]], {"units": "Hz"})
     ax = plotting.plot_psd(ds, "holes")
     lines = [ln for ln in ax.get_lines() if ln.get_label() == "corner frequency"]
     assert lines[0].get_xdata()[0] == 2e6
@@ -137,3 +158,23 @@ def test_import_is_lazy():
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
                          check=True)
     assert out.stdout.split() == ["False", "False"]
+
+
+def test_long_titles_fit_their_panels():
+    """A long scenario title is shortened to one line and the panel's own line wrapped, so
+    that no title line is wider than its panel (measured on the drawn figure's text
+    extents)."""
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+
+    ds = make_dataset()
+    ds.attrs["title"] = "an array of cooled pixels under chopped light with " * 4
+    fig, axes = plotting._grid(4)
+    for ax in axes:
+        plotting.plot_psd(ds, "trapped:deep", ax=ax)
+    canvas = FigureCanvasAgg(fig)
+    canvas.draw()
+    renderer = canvas.get_renderer()
+    for ax in axes:
+        title = ax.title
+        assert "..." in title.get_text()
+        assert title.get_window_extent(renderer).width <= ax.get_window_extent(renderer).width

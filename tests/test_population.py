@@ -98,3 +98,34 @@ def test_telegraph_fraction_follows_the_poisson_law_of_single_traps():
     lam = 1.0e14 * 1.0e-14
     p = lam * math.exp(-lam)
     assert abs(frac - p) < 4 * math.sqrt(p * (1 - p) / counts.size)
+
+
+def test_each_pixel_against_its_own_linear_noise():
+    """dopants = "poisson": every pixel draws its own acceptor count A_i, so its electrons
+    follow their own birth-death law, Poisson with mean and variance g / k_i, k_i ~ B A_i / V
+    (common practice; the linear-noise variance is then exact to O(1/A)).  Each pixel's own
+    linear-noise variance in the file is that of the model rebuilt from the pixel's own counts;
+    each pixel's own time variance agrees with it on average within 4 standard errors of the
+    spread across pixels; the file's theory spectrum is the average of the pixels' own."""
+    from grmc import continuum
+    from grmc.model import Counts, build_model
+    from grmc.report import format_run_table
+
+    scen = grmc.load_scenario(text=BD.replace("seed = 41", 'seed = 41\ndopants = "poisson"'))
+    ds = grmc.run(scen, workers=2, progress=False)
+    acceptors = ds["acceptors"].values
+    assert np.unique(acceptors).size > 10  # the pixels really differ
+    f0 = ds["frequency"].values[:1]
+    e = list(ds["species"].values).index("electrons")
+    own_psd = []
+    for i in range(acceptors.size):
+        model = build_model(scen, counts=Counts(donors=int(ds["donors"][i]),
+                                                acceptors=int(acceptors[i]), traps=()))
+        own = np.diag(continuum.lna(model).covariance)
+        np.testing.assert_allclose(ds["pixel_var_lna"].values[i], own, rtol=1e-12)
+        own_psd.append(np.real(continuum.lna_psd(model, f0)[e, e, 0]))
+    np.testing.assert_allclose(ds["psd_lna_pixels"].values[e, 0], np.mean(own_psd), rtol=1e-10)
+    d = ds["pixel_var"].values[:, e] - ds["pixel_var_lna"].values[:, e]
+    se = d.std(ddof=1) / math.sqrt(d.size)
+    assert abs(d.mean()) < 4 * se, (d.mean(), se)
+    assert "against its own continuum mean and linear-noise variance" in format_run_table(ds)

@@ -115,3 +115,18 @@ def test_sweep_attaches_to_a_running_scheduler(tmp_path):
     a, b = load(remote), load(local)
     for name in a.data_vars:
         np.testing.assert_array_equal(a[name].values, b[name].values, err_msg=name)
+
+
+def test_one_line_per_point():
+    """The line `grmc sweep` prints per finished point: the varied values, the method and the
+    relative deviations value / reference - 1 (the definition in grmc.sweep's docstring)."""
+    from grmc.report import format_sweep_point
+
+    res = {"index": 2, "method": "exact", "species": ["electrons", "holes", "trapped:t"],
+           "mean": [11.0, 5.0, 1.0], "continuum": [10.0, 5.0, 1.0],
+           "var": [9.0, 0.0, 1.0], "var_lna": [10.0, 0.0, 2.0]}
+    line = format_sweep_point(res, {"volume.volume_cm3": 1e-15, "traps.t.count": 2.0})
+    assert line.startswith("point 3: volume.volume_cm3=1e-15, traps.t.count=2  [exact]")
+    assert "electrons mean +10.0 % var -10.0 %" in line
+    assert "holes mean +0.0 % var -" in line  # 0 / 0: no relative deviation to print
+    assert "trapped" not in line and "\n" not in line
