@@ -28,7 +28,7 @@ NEW = "Added in this release"
 
 #: Pages that other parts of this release add to docs/ (listed in docs/README.md); a link to
 #: one of them is accepted while it is not in this tree yet.
-PENDING_PAGES = {"accuracy.md", "solve.md", "flicker.md", "hardening.md"}
+PENDING_PAGES = {"solve.md", "flicker.md"}
 
 #: Names written outside the registry that the file-format page documents on purpose: the
 #: sweep file's string variable ``method`` (exact or monte carlo per point).
