@@ -438,9 +438,9 @@ def build_parser() -> argparse.ArgumentParser:
 def _known_refusal(exc: Exception) -> bool:
     """The solvers' refusals of a case they cannot handle (bad input, exit 2)."""
     from .continuum import ContinuumError
-    from .exact import StateSpaceTooLarge
+    from .exact import ExactRefusal
 
-    return isinstance(exc, (ContinuumError, StateSpaceTooLarge))
+    return isinstance(exc, (ContinuumError, ExactRefusal))
 
 
 def _dispatch(args) -> int:

@@ -83,6 +83,9 @@ VARIABLES: dict[str, Var] = {
                                  "standard error of the time-weighted variance"),
     "steady_continuum": Var(("species",), "1", "continuum steady-state count"),
     "var_lna": Var(("species",), "1", "linear-noise variance of the count"),
+    "mean_next_order": Var(("species",), "1",
+                           "next-order (1/volume) correction of the mean count: predicted "
+                           "exact stationary mean minus the continuum steady state"),
     "relaxation_time_lna": Var(("mode",), "s", "linear-noise relaxation time"),
     "psd": Var(("species", "frequency"), "Hz-1",
                "one-sided power spectral density of the count fluctuation", _ENS),

@@ -40,8 +40,6 @@ def exact_dataset(scenario: Scenario, *, command: str | None = None,
     grmc.exact.StateSpaceTooLarge
         When the truncation would need more than ``max_states`` states.
     """
-    import xarray as xr
-
     model = build_model(scenario)
     freqs = exact_frequencies(scenario)
     run = scenario.run
@@ -96,6 +94,8 @@ def exact_dataset(scenario: Scenario, *, command: str | None = None,
         "frequency": ("frequency", freqs),
         "count_value": ("count_value", values),
     }
+    import xarray as xr  # after the solve: a refusal answers without loading xarray
+
     ds = xr.Dataset(data, coords=coords)
     return finish(
         ds, title=scenario.title, scenario_toml=scenario.text, command=command,

@@ -14,6 +14,7 @@ import numpy as np
 from . import continuum
 from .cost import WARN_EVENTS, cost_warnings, estimate
 from .model import build_model, nominal_counts, trap_means
+from .next_order import next_order
 from .scenario import Scenario, check_counts
 
 __all__ = ["summarize", "format_summary", "FEW_CARRIERS", "TOO_MANY_EVENTS"]
@@ -22,6 +23,8 @@ __all__ = ["summarize", "format_summary", "FEW_CARRIERS", "TOO_MANY_EVENTS"]
 FEW_CARRIERS = 10.0
 #: Above this many events a run is too long to be practical on one machine.
 TOO_MANY_EVENTS = WARN_EVENTS
+#: Above this relative size the next-order correction of a mean is worth a warning.
+LARGE_CORRECTION = 0.10
 #: Rounding a density to a count may move it by this fraction before we warn.
 ROUNDING_TOLERANCE = 0.05
 
@@ -74,6 +77,8 @@ def summarize(scenario: Scenario) -> dict:
                 "continuum and linear-noise answers are not to be trusted here"
             )
     warnings.extend(cost_warnings(estimate(scenario, model, rate)))
+    correction = next_order(model).delta
+    warnings.extend(_correction_warnings(model.species, ss, correction))
     times = [float(t) for t in lna.relaxation_times]
     if times and run.duration_s < 20.0 * max(times):
         warnings.append(
@@ -103,6 +108,7 @@ def summarize(scenario: Scenario) -> dict:
         "channels": [c.name for c in model.channels],
         "steady_continuum": {s: float(v) for s, v in zip(model.species, ss)},
         "var_lna": {s: float(v) for s, v in zip(model.species, var)},
+        "mean_next_order": {s: float(v) for s, v in zip(model.species, correction)},
         "steady_density_cm3": {s: float(v) / vol for s, v in zip(model.species, ss)},
         "start_state": {s: int(v) for s, v in zip(model.species, x0)},
         "relaxation_times_s": times,
@@ -159,6 +165,30 @@ def _eng(x: float) -> str:
     return f"{x:.4g}"
 
 
+def _correction_warnings(species, ss, correction) -> list[str]:
+    """Where the next-order correction exceeds LARGE_CORRECTION of the continuum mean."""
+    out = []
+    for name, mean, d in zip(species, ss, correction):
+        if mean > 0 and abs(d) > LARGE_CORRECTION * mean:
+            out.append(
+                f"{name}: the next-order correction of the mean ({d:+.3g}) is "
+                f"{100 * abs(d) / mean:.0f} % of the continuum mean: the continuum and "
+                "linear-noise answers are off by about that much (use grmc exact or grmc run)")
+    return out
+
+
+def _next_order_lines(info: dict) -> list[str]:
+    """The next-order correction of each mean beside the continuum mean, with its size."""
+    out = ["", f"  {'species':<22}{'continuum':>16}{'next order':>14}{'relative':>12}"
+              "   (predicted exact mean - continuum mean, counts)"]
+    for s in info["species"]:
+        m = info["steady_continuum"][s]
+        d = info["mean_next_order"][s]
+        rel = f"{100 * d / m:+.3g} %" if m > 0 else "-"
+        out.append(f"  {s:<22}{_eng(m):>16}{_eng(d):>14}{rel:>12}")
+    return out
+
+
 def _material_lines(material: dict, name: str | None) -> list[str]:
     """One line per resolved material value with its units and source."""
     if not material:
@@ -197,6 +227,7 @@ def format_summary(info: dict) -> str:
         fano = f"{v / m:.3f}" if m > 0 and math.isfinite(v / m) else "-"
         lines.append(f"  {s:<22}{_eng(m):>16}{_eng(info['steady_density_cm3'][s]):>18}"
                      f"{_eng(v):>14}{fano:>8}{info['start_state'][s]:>10}")
+    lines.extend(_next_order_lines(info))
     lines.append("")
     if info["relaxation_times_s"]:
         times = ", ".join(_eng(t) for t in info["relaxation_times_s"])

@@ -229,7 +229,7 @@ def evaluate_point(scenario: Scenario, index: int, *, exact_limit: int = EXACT_S
         out.update(method="exact", n_states=int(res.n_states), mean=res.mean, mean_err=zeros,
                    var=res.var, var_err=zeros, tau=tau, tau_err=zeros,
                    probability_outside=float(res.mass_outside))
-    except exact.StateSpaceTooLarge:
+    except exact.ExactRefusal:  # too many states, or too stiff: Monte Carlo instead
         from .cost import refuse_absurd, run_cost
         from .simulate import run
 

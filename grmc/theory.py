@@ -15,6 +15,7 @@ import numpy as np
 
 from . import continuum
 from .model import Model
+from .next_order import mean_correction
 from .readout import current_gradient, lna_current
 
 __all__ = ["Theory", "theory"]
@@ -54,6 +55,7 @@ def theory(model: Model, freqs: np.ndarray | None = None, *, times: np.ndarray |
     Returns
     -------
     Theory  with the variables ``steady_continuum``, ``var_lna``, ``relaxation_time_lna``,
+    ``mean_next_order`` (:mod:`grmc.next_order`),
     and as asked ``count_continuum``, ``psd_lna``, ``current_psd_lna``,
     ``current_mean_continuum``, ``response_*_continuum``.
 
@@ -70,6 +72,7 @@ def theory(model: Model, freqs: np.ndarray | None = None, *, times: np.ndarray |
     v["steady_continuum"] = (("species",), ss)
     v["var_lna"] = (("species",), np.diag(lna.covariance).copy())
     v["relaxation_time_lna"] = (("mode",), np.asarray(lna.relaxation_times, dtype=float))
+    v["mean_next_order"] = (("species",), mean_correction(model))
     if times is not None:
         v["count_continuum"] = (("species", "t"), continuum.transient(model, start, times).T)
     if freqs is not None:
