@@ -260,7 +260,7 @@ class Histogram:
         would make the axis too wide (e.g. 1e5 majority holes beside 10 electrons) gets a
         NaN row.
         """
-        n_species = plan.base.model.n_species
+        n_species = len(plan.species)
         if not self.hist:
             return {}, {}
         lo = hi = None

@@ -44,7 +44,7 @@ def _stationary(plan: Plan, acc: Accumulators) -> list[tuple[float, str]]:
         return [(np.inf, "stationary variance (one trajectory)")]
     v = acc.stationary.variables(plan)
     out = []
-    species = plan.base.model.species
+    species = plan.species
     for name in ("stationary_mean", "stationary_var"):
         val, err = v[name][1], v[f"{name}_stderr"][1]
         for s, sp in enumerate(species):
@@ -83,7 +83,7 @@ def worst_half_width(plan: Plan, acc: Accumulators, band_Hz: tuple[float, float]
     Reached  (worst = inf when no band of the spectrum lies inside ``band_Hz``)
     """
     checks = _stationary(plan, acc)
-    labels = [f"psd_band {s}" for s in plan.base.model.species]
+    labels = [f"psd_band {s}" for s in plan.species]
     bands = _bands(plan, acc.count_spectrum, labels, band_Hz)
     if acc.current_spectrum is not None:
         bands += _bands(plan, acc.current_spectrum, ["current_psd_band"], band_Hz)

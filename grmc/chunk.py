@@ -16,6 +16,7 @@ from collections.abc import Callable, Iterable
 
 import numpy as np
 
+from . import spread
 from .accumulators import Accumulators, observe
 from .engine.ensemble import Cancelled
 from .plan import OVERSAMPLE, PURPOSE_ENGINE, Plan, Prepared
@@ -115,10 +116,17 @@ def reduce_chunk(plan: Plan, indices: Iterable[int], *, cancel: threading.Event 
     Returns
     -------
     Accumulators  Picklable; merge chunk results in index order.
+
+    Notes
+    -----
+    Each trajectory is projected onto the output species right after it is simulated
+    (:func:`grmc.spread.project_trajectory`: a spread trap level's total beside its
+    sub-levels; the identity without a spread), so every accumulator sees the file's species.
     """
     acc = Accumulators.for_plan(plan)
     for i in indices:
         prep = plan.device(i)
-        res = simulate_one(plan, i, prep, cancel=cancel, tick=tick)
+        res = spread.project_trajectory(simulate_one(plan, i, prep, cancel=cancel, tick=tick),
+                                        prep.model, plan.run.duration_s)
         acc.add(observe(plan, i, res, prep), plan)
     return acc

@@ -240,6 +240,34 @@ VARIABLES: dict[str, Var] = {
     "current_psd_lna_pixels": Var(("frequency",), "A2 Hz-1",
                                   "average over the pixels of each pixel's own linear-noise "
                                   "current spectrum"),
+    "pixel_current_noise_median": Var(("noise_frequency",), "A2 Hz-1",
+                                      "median over the pixels of the current noise"),
+    "pixel_count_noise_median": Var(("noise_frequency",), "Hz-1",
+                                    "median over the pixels of the electron-count noise"),
+    "pixel_current_relative_noise_median": Var(("noise_frequency",), "Hz-1",
+                                               "median over the pixels of the current noise "
+                                               "divided by the squared mean current"),
+    "pixel_count_relative_noise_median": Var(("noise_frequency",), "Hz-1",
+                                             "median over the pixels of the electron-count "
+                                             "noise divided by the squared mean count"),
+    "flicker_coefficient": Var(("species",), "Hz-1",
+                               "K of S = K / (f / 1 Hz)^alpha fitted over the 1/f band"),
+    "flicker_coefficient_stderr": Var(("species",), "Hz-1",
+                                      "standard error of flicker_coefficient"),
+    "flicker_exponent": Var(("species",), "1", "alpha of S = K / f^alpha"),
+    "flicker_exponent_stderr": Var(("species",), "1", "standard error of flicker_exponent"),
+    "flicker_corner_frequency": Var(("species",), "Hz",
+                                    "frequency where K / f^alpha meets a resolved G-R plateau"),
+    "current_flicker_coefficient": Var((), "A2 Hz-1",
+                                       "K of the current's S = K / (f / 1 Hz)^alpha"),
+    "current_flicker_coefficient_stderr": Var((), "A2 Hz-1",
+                                              "standard error of current_flicker_coefficient"),
+    "current_flicker_exponent": Var((), "1", "alpha of the current's S = K / f^alpha"),
+    "current_flicker_exponent_stderr": Var((), "1",
+                                           "standard error of current_flicker_exponent"),
+    "current_flicker_corner_frequency": Var((), "Hz",
+                                            "frequency where the current's K / f^alpha meets "
+                                            "its white level or G-R plateau"),
 }
 
 

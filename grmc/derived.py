@@ -11,13 +11,13 @@ from __future__ import annotations
 
 import numpy as np
 
-from . import population, spectra
+from . import flicker, population, spectra, spread
 from .accumulators import Accumulators
 from .bands import band_average
 from .model import ELEMENTARY_CHARGE_C
 from .plan import Plan
 
-__all__ = ["DERIVED", "derive"]
+__all__ = ["DERIVED", "derive", "flicker_band"]
 
 
 def _fit_vars(fits, *, prefix: str, species_dim: bool) -> dict:
@@ -56,7 +56,11 @@ def _drive_Hz(plan: Plan) -> float | None:
 
 
 def count_fits(plan: Plan, acc: Accumulators, data: dict) -> tuple[dict, dict]:
-    """Lorentzian fits of every count spectrum, jackknife errors over trajectory groups."""
+    """Lorentzian fits of every count spectrum, jackknife errors over trajectory groups.
+
+    The sub-levels of a spread trap level are not analysed (their Lorentzians are known from
+    the linear-noise answer; :func:`grmc.spread.not_analysed`): the level's total is.
+    """
     spec = acc.count_spectrum
     freqs = plan.frequencies
     psd, (low, high) = spec.mean(), spec.interval(plan)
@@ -64,7 +68,8 @@ def count_fits(plan: Plan, acc: Accumulators, data: dict) -> tuple[dict, dict]:
     fits = [spectra.analyse_spectrum(freqs, psd[s], low[s], high[s], spec.segments(plan),
                                      batches=None if groups is None else groups[:, s],
                                      drive_Hz=_drive_Hz(plan))
-            for s in range(psd.shape[0])]
+            if not spread.is_sublevel(name) else spread.not_analysed(spec.segments(plan))
+            for s, name in enumerate(plan.species)]
     return _fit_vars(fits, prefix="", species_dim=True), {}
 
 
@@ -213,6 +218,48 @@ def readout_band_noise(plan: Plan, acc: Accumulators, data: dict) -> tuple[dict,
                           lna=lambda f: lna_current(model, f).psd), {}
 
 
+def flicker_band(plan: Plan) -> tuple[float, float] | None:
+    """The band of the 1/f fit [Hz]: ``[run] flicker_band_Hz`` where given, else the inner
+    band of the trap levels' spread of time constants, cut to what the run resolves
+    (:func:`grmc.flicker.fit_band`); None when there is neither."""
+    return flicker.fit_band(plan.run.flicker_band_Hz,
+                            spread.spread_band(plan.base.model, plan.base.steady),
+                            plan.frequencies)
+
+
+def _last_plateau(plateau: np.ndarray) -> np.ndarray:
+    """The plateau of the fastest resolved Lorentzian per row (NaN where none) [unit^2/Hz]."""
+    rows = np.atleast_2d(plateau)
+    out = np.full(rows.shape[0], np.nan)
+    for i, row in enumerate(rows):
+        ok = np.flatnonzero(np.isfinite(row))
+        if ok.size:
+            out[i] = row[ok[-1]]
+    return out
+
+
+def flicker_fit(plan: Plan, acc: Accumulators, data: dict) -> tuple[dict, dict]:
+    """The 1/f read-out S = K / f^alpha of every count and of the current's G-R part over
+    :func:`flicker_band`, jackknife errors over the trajectory groups, and the corner where
+    the line meets the fastest resolved plateau (or the current's white shot level)
+    (:func:`grmc.flicker.flicker_variables`; McWhorter 1957)."""
+    band = flicker_band(plan)
+    if band is None:
+        return {}, {}
+    spec = acc.count_spectrum
+    cur = {}
+    cspec = acc.current_spectrum
+    if cspec is not None:
+        shot = float(data["current_shot_noise"][1]) if "current_shot_noise" in data else 0.0
+        groups = cspec.group_means(plan)
+        cur = {"current_psd": cspec.mean() - shot,
+               "current_level": shot or float(_last_plateau(data["current_plateau"][1])[0]),
+               "current_groups": None if groups is None else groups - shot}
+    return flicker.flicker_variables(plan.frequencies, spec.mean(), spec.segments(plan), band,
+                                     groups=spec.group_means(plan),
+                                     plateaus=_last_plateau(data["plateau"][1]), **cur), {}
+
+
 #: The derived quantities, in order (add new ones at the end).
 DERIVED = (
     count_fits,
@@ -222,6 +269,7 @@ DERIVED = (
     pixel_population,
     band_spectra,
     readout_band_noise,
+    flicker_fit,
 )
 
 

@@ -1055,6 +1055,9 @@ class ExactResult:
     transient_var : ndarray or None, shape (T, S)  Variances at ``times`` [count^2]
     transient_mass_lost : ndarray or None, shape (T,)  Probability absorbed by the FSP sink
         by each time (bounds the L1 error of the transient law)
+    transient_output_var : ndarray or None, shape (T, outputs)  Variances at ``times`` of
+        the model's output species (a spread trap level's total among them), only when they
+        differ from the species [count^2]
     flux_mean : float or None  Mean collected flux ``sum_r flow_r <a_r>`` [carriers/s]
         (None when no channel has a flow)
     flux_white : float or None  Its white (high-frequency) level ``2 sum_r flow_r^2 <a_r>``
@@ -1083,6 +1086,7 @@ class ExactResult:
     transient_mean: np.ndarray | None = None
     transient_var: np.ndarray | None = None
     transient_mass_lost: np.ndarray | None = None
+    transient_output_var: np.ndarray | None = None
     flux_mean: float | None = None
     flux_white: float | None = None
     flux_psd: np.ndarray | None = None
@@ -1592,9 +1596,11 @@ def solve(
         raise ValueError(f"the start state {tra.start} is outside the truncation J = {tr.J}")
     space = st.space
     mean, cov = _moments(space.states, st.pi)
-    t_mean = t_var = None
+    t_mean = t_var = t_out_var = None
     if times is not None:
         t_mean, t_var = _transient_moments(tra.P, space.states)
+        if model.has_sublevels:  # the output species' sums need their own variances
+            t_out_var = _transient_moments(tra.P, model.project(space.states.astype(float)))[1]
     return ExactResult(
         species=tuple(model.species), states=space.states, probability=st.pi, mean=mean,
         var=np.diag(cov).copy(), covariance=cov, mass_outside=float(st.mass_outside),
@@ -1602,7 +1608,7 @@ def solve(
         residual=float(st.residual), freqs=freqs, times=times,
         x0=None if tra.start is None else np.asarray(tra.start, dtype=np.int64),
         transient_mean=t_mean, transient_var=t_var, transient_mass_lost=lost,
-        _generator=st.generator, _support=st.support, **_spectra(model, st, freqs),
+        transient_output_var=t_out_var, _generator=st.generator, _support=st.support, **_spectra(model, st, freqs),
     )
 
 

@@ -58,21 +58,32 @@ def exact_dataset(scenario: Scenario, *, command: str | None = None,
     res = exact.solve(model, freqs=freqs, times=t_eval, x0=x0, max_states=max_states)
     th = theory(model, freqs, times=t, start=res.transient_mean[0],
                 current=scenario.readout is not None)
+    # the file's species: with a spread trap level its total beside the sub-levels (the
+    # projections below are identities otherwise; the theory is projected in grmc.theory)
+    proj, pmat = model.project, model.project_matrix
+    sub = model.has_sublevels
     data = {
-        "stationary_mean": (("species",), res.mean),
-        "stationary_var": (("species",), res.var),
-        "psd": (("species", "frequency"), res.psd),
-        "count_mean": (("species", "t"), res.transient_mean.T),
-        "count_var": (("species", "t"), res.transient_var.T),
+        "stationary_mean": (("species",), proj(res.mean)),
+        "stationary_var": (("species",), np.diag(pmat(res.covariance)).copy() if sub
+                           else res.var),
+        "psd": (("species", "frequency"), np.real(np.einsum("iif->if", pmat(res.psd_matrix)))
+                if sub else res.psd),
+        "count_mean": (("species", "t"), proj(res.transient_mean).T),
+        "count_var": (("species", "t"), (res.transient_output_var if sub
+                                         else res.transient_var).T),
         "probability_outside": ((), float(res.mass_outside)),
     }
-    lo = int(res.states.min())
-    hi = int(res.states.max())
+    states = np.rint(proj(res.states)).astype(np.int64)
+    lo = int(states.min())
+    hi = int(states.max())
     values = np.arange(lo, hi + 1, dtype=np.int64)
-    hist = np.zeros((model.n_species, values.size))
-    for s in range(model.n_species):
-        v, p = res.marginal(s)
-        hist[s, v - lo] = p
+    hist = np.zeros((states.shape[1], values.size))
+    for s in range(states.shape[1]):
+        if sub:
+            np.add.at(hist[s], states[:, s] - lo, res.probability)
+        else:
+            v, p = res.marginal(s)
+            hist[s, v - lo] = p
     data["count_histogram"] = (("species", "count_value"), hist)
     data.update(th.variables)
     readout = scenario.readout
@@ -90,7 +101,7 @@ def exact_dataset(scenario: Scenario, *, command: str | None = None,
                       "readout_current": describe_current(model)})
     coords = {
         "t": ("t", t),
-        "species": ("species", np.array(model.species, dtype=object)),
+        "species": ("species", np.array(model.output_species, dtype=object)),
         "frequency": ("frequency", freqs),
         "count_value": ("count_value", values),
     }

@@ -207,10 +207,10 @@ def lna_theory(ds: Any, quantity: str
             return None
         direct = (lambda f: lna_current(model, f).psd)
     else:
-        if quantity not in model.species:
+        if quantity not in model.output_species:  # a spread level's total among them
             return None
-        i = list(model.species).index(quantity)
-        direct = (lambda f: np.real(lna_psd(model, f)[i, i]))
+        i = list(model.output_species).index(quantity)
+        direct = (lambda f: np.real(model.project_matrix(lna_psd(model, f))[i, i]))
     how = ("the linear-noise spectrum (van Kampen's system-size expansion), recomputed from "
            "the scenario text stored in the file")
     try:

@@ -48,7 +48,18 @@ The last four are the open volume, two alternatives:
   the majority carriers only keep the volume neutral and add no collection of their own.
 
 with n_1 = n_i exp(E_t / kT) and p_1 = n_i exp(-E_t / kT).  A channel whose coefficient is
-zero is absent.  Every channel keeps the charge
+zero is absent.
+
+A trap level with ``spread_decades = D > 0`` is split into sub-levels ``<k>#j`` (j = 0 the
+fastest), :data:`SUBLEVELS_PER_DECADE` per decade unless the level says otherwise: sub-level j
+has both capture coefficients (and with them both emission rates) multiplied by
+``s_j = 10^(-D (j + 1/2) / n)``, the centre in log of its share of the D decades, so the
+occupancy in equilibrium is unchanged and only the time scale varies (tunnelling into an
+insulator to a depth z gives the factor exp(-z / lambda); z uniform gives this log-uniform
+law; McWhorter 1957).  Each sub-level is a species ``trapped:<k>#j`` of its own; the output
+files show the level's total occupied count as ``trapped:<k>`` (:attr:`Model.output_matrix`).
+
+Every channel keeps the charge
 
     N_e - N_h + sum_k M_k = D - A + sum_{donor-like k} T_k
 
@@ -80,6 +91,10 @@ __all__ = [
     "nominal_counts",
     "draw_counts",
     "build_model",
+    "sublevel_count",
+    "sublevel_scales",
+    "split_evenly",
+    "with_every_trap",
 ]
 
 #: Elementary charge [C] (CODATA 2018, exact).
@@ -91,10 +106,46 @@ MAX_FACTORS = 3
 ELECTRONS = "electrons"
 HOLES = "holes"
 
+#: Sub-levels per decade of a trap level's spread of time constants (default of
+#: ``[[traps]] sublevels_per_decade``): with two, the sum of their Lorentzians departs from
+#: a straight 1/f line by about 1 % (see docs/flicker.md), well inside a run's interval.
+SUBLEVELS_PER_DECADE = 2
+
 
 def trapped_name(label: str) -> str:
     """Species name of the occupied traps of one level."""
     return f"trapped:{label}"
+
+
+def sublevel_count(trap) -> int:
+    """Number of sub-levels of a trap level: 1 without a spread, else
+    ``ceil(per_decade * spread_decades)`` [count]."""
+    decades = float(getattr(trap, "spread_decades", 0.0))
+    if decades <= 0.0:
+        return 1
+    per = int(getattr(trap, "sublevels_per_decade", None) or SUBLEVELS_PER_DECADE)
+    return max(1, math.ceil(per * decades - 1e-9))
+
+
+def sublevel_scales(trap) -> np.ndarray:
+    """Rate factors s_j of a level's sub-levels, fastest first [1].
+
+    The D decades below the given coefficients are cut into n equal intervals in log; each
+    sub-level sits at the centre (in log) of its interval: ``s_j = 10^(-D (j + 1/2) / n)``.
+    Without a spread the single factor is 1.
+    """
+    n = sublevel_count(trap)
+    decades = float(getattr(trap, "spread_decades", 0.0))
+    if decades <= 0.0:
+        return np.ones(1)
+    return 10.0 ** (-decades * (np.arange(n) + 0.5) / n)
+
+
+def split_evenly(total: int, n: int) -> tuple[int, ...]:
+    """``total`` traps over ``n`` equally likely sub-levels at evenly spaced quantiles:
+    sub-level j gets ``round((j + 1) total / n) - round(j total / n)`` (rounded dopants)."""
+    edges = [_nearest_int(j * total / n) for j in range(n + 1)]
+    return tuple(edges[j + 1] - edges[j] for j in range(n))
 
 
 @dataclass(frozen=True)
@@ -105,11 +156,23 @@ class Counts:
     ----------
     donors, acceptors : int  Ionized dopant counts D, A [count]
     traps : tuple of int  T_k per trap level, in scenario order [count]
+    split : tuple of tuple of int, optional  The traps of each level over its sub-levels
+        (fastest first; sums to T_k), for levels with a spread of time constants; None: each
+        level's traps spread evenly over its sub-levels (:meth:`level_split`) [count]
     """
 
     donors: int
     acceptors: int
     traps: tuple[int, ...] = ()
+    split: tuple[tuple[int, ...], ...] | None = None
+
+    def level_split(self, scenario: Scenario) -> tuple[tuple[int, ...], ...]:
+        """Traps of each sub-level, per scenario level [count]: ``split`` where given,
+        else each level's ``T_k`` spread evenly (:func:`split_evenly`)."""
+        if self.split is not None:
+            return self.split
+        return tuple(split_evenly(total, sublevel_count(trap))
+                     for trap, total in zip(scenario.traps, self.traps))
 
 
 @dataclass(frozen=True)
@@ -215,6 +278,8 @@ def draw_counts(scenario: Scenario, rng: np.random.Generator) -> Counts:
 
     Donors, acceptors and traps given by a density (volume or areal) are Poisson distributed
     with the mean density * V (or areal density * area); traps given by ``count`` keep it.
+    On a level with a spread of time constants each trap draws its own sub-level (equally
+    likely), so the pixel's traps sit at time constants of their own.
 
     Parameters
     ----------
@@ -230,10 +295,24 @@ def draw_counts(scenario: Scenario, rng: np.random.Generator) -> Counts:
     mat = scenario.material
     donors = int(rng.poisson(mat.donors_cm3 * vol))
     acceptors = int(rng.poisson(mat.acceptors_cm3 * vol))
-    traps = []
+    traps, split = [], []
     for trap, mean in zip(scenario.traps, trap_means(scenario)):
-        traps.append(trap.count if trap.count is not None else int(rng.poisson(mean)))
-    return Counts(donors=donors, acceptors=acceptors, traps=tuple(traps))
+        n = sublevel_count(trap)
+        if n == 1:
+            traps.append(trap.count if trap.count is not None else int(rng.poisson(mean)))
+            split.append((traps[-1],))
+            continue
+        # each trap's rate factor is drawn from the spread: a given count falls on the
+        # sub-levels multinomially, a density's Poisson count as independent Poisson counts
+        if trap.count is not None:
+            sub = rng.multinomial(trap.count, np.full(n, 1.0 / n))
+        else:
+            sub = rng.poisson(mean / n, size=n)
+        split.append(tuple(int(c) for c in sub))
+        traps.append(int(sum(split[-1])))
+    spread = any(sublevel_count(t) > 1 for t in scenario.traps)
+    return Counts(donors=donors, acceptors=acceptors, traps=tuple(traps),
+                  split=tuple(split) if spread else None)
 
 
 @dataclass(frozen=True)
@@ -247,6 +326,11 @@ class Model:
     species : tuple of str  ``electrons``, ``holes``, ``trapped:<label>``...
     channels : tuple of Channel
     charge : int  The conserved value of ``charge_weights @ x`` [elementary charges]
+    level_counts : tuple of int  Traps of each trap species (sub-levels included) [count]
+    output_species : tuple of str  Species of the output files: ``electrons``, ``holes``,
+        ``trapped:<label>`` per scenario level (a spread level's total), then the sub-levels
+        ``trapped:<label>#j`` of spread levels
+    level_scales : tuple of float  Rate factor s_j of each trap species (1 without spread) [1]
 
     Notes
     -----
@@ -260,6 +344,9 @@ class Model:
     channels: tuple[Channel, ...]
     charge: int
     trap_kinds: tuple[str, ...] = field(default=())
+    level_counts: tuple[int, ...] = field(default=())  # traps of each trap species [count]
+    output_species: tuple[str, ...] = field(default=())
+    level_scales: tuple[float, ...] = field(default=())  # rate factor of each trap species
 
     # ---------------------------------------------------------------- sizes and names
     @property
@@ -344,9 +431,44 @@ class Model:
     def capacity(self) -> np.ndarray:
         """Upper bound of each species (-1: unbounded; T_k for trapped electrons) [count]."""
         cap = np.full(self.n_species, -1, dtype=np.int64)
-        cap[2:] = self.counts.traps
+        cap[2:] = self.level_counts
         cap.setflags(write=False)
         return cap
+
+    @cached_property
+    def output_matrix(self) -> np.ndarray:
+        """P with ``x_out = P @ x``: the output species as sums of the model's species, shape
+        (output species, species) [1].  The identity when no level has a spread."""
+        P = np.zeros((len(self.output_species), self.n_species))
+        index = {name: i for i, name in enumerate(self.species)}
+        for o, name in enumerate(self.output_species):
+            if name in index:
+                P[o, index[name]] = 1.0
+            else:  # a spread level's total: the sum of its sub-levels
+                for i, sp in enumerate(self.species):
+                    if sp.startswith(name + "#"):
+                        P[o, i] = 1.0
+        P.setflags(write=False)
+        return P
+
+    @property
+    def has_sublevels(self) -> bool:
+        """True when some trap level is split into sub-levels (outputs differ from species)."""
+        return tuple(self.output_species) != tuple(self.species)
+
+    def project(self, x: np.ndarray) -> np.ndarray:
+        """Counts (species along the LAST axis) as output species, ``x @ P^T`` [count]."""
+        x = np.asarray(x)
+        return x if not self.has_sublevels else x @ self.output_matrix.T
+
+    def project_matrix(self, m: np.ndarray) -> np.ndarray:
+        """A (species, species, ...) covariance or spectral matrix as output species,
+        ``P m P^T`` along the first two axes."""
+        m = np.asarray(m)
+        if not self.has_sublevels:
+            return m
+        P = self.output_matrix
+        return np.einsum("ai,ij...,bj->ab...", P, m, P)
 
     @cached_property
     def reverse_pairs(self) -> tuple[tuple[int, int], ...]:
@@ -456,13 +578,25 @@ class Model:
         """
         x = np.asarray(x, dtype=np.float64)
         out = np.zeros(self.n_species, dtype=np.int64)
-        for k, total in enumerate(self.counts.traps):
+        for k, total in enumerate(self.level_counts):
             out[2 + k] = min(max(_nearest_int(x[2 + k]), 0), total)
         d = self.charge - int(out[2:].sum())  # N_e - N_h
         e = _nearest_int(0.5 * (x[0] + x[1] + d))
         e = max(e, d, 0)
         out[0], out[1] = e, e - d
         return out
+
+    def counts_without_trap(self, level: int) -> Counts:
+        """This device's counts with one trap fewer in trap species ``level`` (index among
+        the trap species, sub-levels counted), e.g. to see what one single trap adds."""
+        split = [list(sub) for sub in self.counts.level_split(self.scenario)]
+        flat = [(k, j) for k, sub in enumerate(split) for j in range(len(sub))]
+        k, j = flat[level]
+        split[k][j] -= 1
+        traps = tuple(sum(sub) for sub in split)
+        if self.counts.split is None and all(len(sub) == 1 for sub in split):
+            return replace(self.counts, traps=traps)
+        return replace(self.counts, traps=traps, split=tuple(tuple(sub) for sub in split))
 
     def with_counts(self, counts: Counts) -> Model:
         """The same scenario with other dopant and trap counts (one device of a population)."""
@@ -524,7 +658,10 @@ def build_model(scenario: Scenario, *, counts: Counts | None = None,
     ni = mat.intrinsic_density_cm3
     kT = BOLTZMANN_EV_K * mat.temperature_K
     E, H = 0, 1
-    species = [ELECTRONS, HOLES] + [trapped_name(t.label) for t in scenario.traps]
+    levels = _levels(scenario, counts)
+    species = [ELECTRONS, HOLES] + [lv[0] for lv in levels]
+    outputs = [ELECTRONS, HOLES] + [trapped_name(t.label) for t in scenario.traps]
+    outputs += [name for name in species[2:] if name not in outputs]
     pair_up = ((E, +1), (H, +1))
     pair_down = ((E, -1), (H, -1))
     ch: list[Channel] = []
@@ -548,25 +685,7 @@ def build_model(scenario: Scenario, *, counts: Counts | None = None,
         "impact generation (h)")
     add("impact generation (h)", Cp * ni * ni, (Factor(H),), pair_up, "Auger ehh")
 
-    donor_traps = 0
-    for k, (trap, total) in enumerate(zip(scenario.traps, counts.traps)):
-        M = 2 + k
-        if total <= 0:
-            continue
-        if trap.kind == "donor":
-            donor_traps += total
-        n1, p1 = _emission_densities(scenario, trap, kT)
-        cn, cp = trap.electron_capture_cm3_s, trap.hole_capture_cm3_s
-        empty = Factor(M, -1, float(total), float(total))
-        lab = trap.label
-        add(f"{lab}: electron capture", cn / vol, (Factor(E), empty), ((E, -1), (M, +1)),
-            f"{lab}: electron emission")
-        add(f"{lab}: electron emission", cn * n1, (Factor(M),), ((E, +1), (M, -1)),
-            f"{lab}: electron capture")
-        add(f"{lab}: hole capture", cp / vol, (Factor(H), Factor(M)), ((H, -1), (M, -1)),
-            f"{lab}: hole emission")
-        add(f"{lab}: hole emission", cp * p1, (empty,), ((H, +1), (M, +1)),
-            f"{lab}: hole capture")
+    donor_traps = _add_trap_channels(add, scenario, levels, kT, vol)
     readout = scenario.readout
     reservoir = scenario.reservoir
     events = readout is not None and readout.collection == "events"
@@ -597,8 +716,64 @@ def build_model(scenario: Scenario, *, counts: Counts | None = None,
         species=tuple(species),
         channels=tuple(ch),
         charge=int(charge),
-        trap_kinds=tuple(t.kind for t in scenario.traps),
+        trap_kinds=tuple(lv[1].kind for lv in levels),
+        level_counts=tuple(lv[3] for lv in levels),
+        output_species=tuple(outputs),
+        level_scales=tuple(lv[2] for lv in levels),
     )
+
+
+def _add_trap_channels(add, scenario: Scenario, levels, kT: float, vol: float) -> int:
+    """The four SRH channels of every trap species (a level, or a sub-level of a spread
+    level, whose capture and emission are scaled together; scale 1 without a spread).
+
+    Returns
+    -------
+    int  Traps of donor-like levels (they enter the conserved charge) [count]
+    """
+    E, H = 0, 1
+    donor_traps = 0
+    for k, (name, trap, scale, total) in enumerate(levels):
+        M = 2 + k
+        if total <= 0:
+            continue
+        if trap.kind == "donor":
+            donor_traps += total
+        n1, p1 = _emission_densities(scenario, trap, kT)
+        cn, cp = trap.electron_capture_cm3_s * scale, trap.hole_capture_cm3_s * scale
+        empty = Factor(M, -1, float(total), float(total))
+        lab = name[len("trapped:"):]
+        add(f"{lab}: electron capture", cn / vol, (Factor(E), empty), ((E, -1), (M, +1)),
+            f"{lab}: electron emission")
+        add(f"{lab}: electron emission", cn * n1, (Factor(M),), ((E, +1), (M, -1)),
+            f"{lab}: electron capture")
+        add(f"{lab}: hole capture", cp / vol, (Factor(H), Factor(M)), ((H, -1), (M, -1)),
+            f"{lab}: hole emission")
+        add(f"{lab}: hole emission", cp * p1, (empty,), ((H, +1), (M, +1)),
+            f"{lab}: hole capture")
+    return donor_traps
+
+
+def _levels(scenario: Scenario, counts: Counts) -> list[tuple[str, object, float, int]]:
+    """The trap species of a model: (species name, scenario trap, rate factor, traps) for
+    each level, a spread level's sub-levels in its place (fastest first)."""
+    out = []
+    for trap, sub in zip(scenario.traps, counts.level_split(scenario)):
+        if sublevel_count(trap) == 1:
+            out.append((trapped_name(trap.label), trap, 1.0, int(sum(sub))))
+            continue
+        for j, (scale, total) in enumerate(zip(sublevel_scales(trap), sub)):
+            out.append((f"{trapped_name(trap.label)}#{j}", trap, float(scale), int(total)))
+    return out
+
+
+def with_every_trap(scenario: Scenario, counts: Counts) -> Counts:
+    """Counts with at least one trap in every level and sub-level: a model with every
+    channel a population of devices can have (for the channel names of a run)."""
+    split = tuple(tuple(max(c, 1) for c in sub) for sub in counts.level_split(scenario))
+    return replace(counts, traps=tuple(sum(sub) for sub in split),
+                   split=None if counts.split is None and not any(
+                       sublevel_count(t) > 1 for t in scenario.traps) else split)
 
 
 def _check_definite_type(scenario: Scenario, counts: Counts, charge: int) -> None:

@@ -10,7 +10,6 @@ and seed only, never on the number of workers or on how many rounds a run takes.
 
 from __future__ import annotations
 
-import dataclasses
 import math
 import threading
 from dataclasses import dataclass
@@ -18,7 +17,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from . import continuum, population, spectra
-from .model import Counts, Model, build_model, draw_counts, nominal_counts
+from .model import Counts, Model, build_model, draw_counts, nominal_counts, with_every_trap
 from .scenario import Scenario, ScenarioError
 
 __all__ = ["OVERSAMPLE", "N_BATCHES", "CHUNK_TRAJECTORIES", "Plan", "Prepared", "SlicePlan",
@@ -136,9 +135,9 @@ class Plan:
     seed : int  Seed of every stream
     segments : int  Periodogram segments per trajectory [1]
     dt_fine : float  Fine bin width [s]
-    ref : ndarray  Start state of the nominal device, the shift for safe sums of squares
-        [count]
-    excess : ndarray  Pairs added at t = 0 per species [count]
+    ref : ndarray  Start state of the nominal device on the output species, the shift for
+        safe sums of squares [count]
+    excess : ndarray  Pairs added at t = 0 per model species [count]
     a_e, a_h : float  Readout current per electron and per hole [A]
     current : bool  Whether the scenario has a readout
     names : tuple of str  Channel names of the full channel list (every trap level present)
@@ -172,6 +171,13 @@ class Plan:
     def run(self):
         """The scenario's ``[run]`` settings."""
         return self.scenario.run
+
+    @property
+    def species(self) -> tuple[str, ...]:
+        """The output species every accumulator holds: the model's species, with a spread
+        trap level's total ``trapped:<label>`` beside its sub-levels
+        (:attr:`grmc.model.Model.output_species`)."""
+        return self.base.model.output_species
 
     @property
     def poisson(self) -> bool:
@@ -247,10 +253,9 @@ def check_pixels(scenario: Scenario, draws, *, first: int = 0) -> None:
 
 
 def _all_channels(scenario: Scenario, counts: Counts) -> Model:
-    """The scenario's model with every trap level present: the channel names (and flows) of
-    a population run."""
-    full = dataclasses.replace(counts, traps=tuple(max(t, 1) for t in counts.traps))
-    return build_model(scenario, counts=full, check_type=False)
+    """The scenario's model with every trap level (and sub-level) present: the channel names
+    (and flows) of a population run."""
+    return build_model(scenario, counts=with_every_trap(scenario, counts), check_type=False)
 
 
 def make_plan(scenario: Scenario, *, slice_events: float) -> Plan:
@@ -288,7 +293,7 @@ def make_plan(scenario: Scenario, *, slice_events: float) -> Plan:
     plan = Plan(
         scenario=scenario, seed=int(rs.seed), segments=segments,
         dt_fine=rs.duration_s / (rs.samples * OVERSAMPLE),
-        ref=base.x0.astype(np.float64), excess=excess, a_e=a_e, a_h=a_h,
+        ref=base.model.project(base.x0.astype(np.float64)), excess=excess, a_e=a_e, a_h=a_h,
         current=readout is not None, names=every.channel_names,
         flow_weight=np.asarray(every.flow_weight), base=base,
         slices=slice_plan(base, rs, slice_events), bands=bands,

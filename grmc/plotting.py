@@ -47,7 +47,8 @@ if TYPE_CHECKING:  # pragma: no cover
     from matplotlib.axes import Axes
 
 __all__ = ["plot_all", "plot_event_rates", "plot_histogram", "plot_psd", "plot_transient",
-           "plot_validity", "plot_population", "plot_worst_pixels", "plot_sweep_noise"]
+           "plot_validity", "plot_population", "plot_worst_pixels", "plot_sweep_noise",
+           "plot_population_sweep"]
 
 DPI = 150
 _PANEL = (6.4, 4.3)  # inches per panel
@@ -191,6 +192,7 @@ def plot_psd(ds: xr.Dataset | Result, species_or_current: str = "current",
         ax.annotate(f"$f_c$ = {_si(fc, 'Hz')}\n$\\tau$ = {_si(tau, 's')}", xy=(fc, 0.04),
                     xycoords=("data", "axes fraction"), xytext=(4, 0),
                     textcoords="offset points", fontsize=8, color=_CORNER_COLOR)
+    _flicker_line(res, tab, ax)
     if why and not corners:
         lines = textwrap.wrap(f"no corner: {why}", 80)
         short = "\n".join(lines[:2]) + (" ..." if len(lines) > 2 else "")
@@ -208,6 +210,16 @@ def plot_psd(ds: xr.Dataset | Result, species_or_current: str = "current",
     ax.grid(True, which="major", alpha=0.3)
     ax.legend(fontsize=8, loc="lower left" if not why else "upper right")
     return ax
+
+
+def _flicker_line(res: Result, tab: Spectrum, ax: Axes) -> None:
+    """The fitted K / f^alpha over its band, where the file has the 1/f read-out."""
+    fit = res.flicker(tab.quantity)
+    if fit is None or fit.band is None or not fit.ok:
+        return
+    f = np.geomspace(fit.band[0], fit.band[1], 50)
+    ax.plot(f, fit.K / f**fit.alpha, color="C1", lw=1.6,
+            label=f"K/f$^\\alpha$, $\\alpha$ = {fit.alpha:.3f} ± {fit.alpha_err:.2g}")
 
 
 def plot_transient(ds: xr.Dataset | Result, ax: Axes | None = None, *,
@@ -230,7 +242,7 @@ def plot_transient(ds: xr.Dataset | Result, ax: Axes | None = None, *,
     ds = res.ds
     if "count_mean" not in ds or "t" not in ds.coords:
         return _note(ax, "this file has no count_mean(species, t): no transient to show")
-    names = [str(s) for s in ds["species"].values]
+    names = list(res.levels)  # a spread level's total stands for its sub-levels
     chosen = names if species is None else ([species] if isinstance(species, str) else species)
     t = np.asarray(ds["t"].values, dtype=float)
     scale, prefix = _engineering(float(np.max(np.abs(t))) if t.size else 1.0)
@@ -413,10 +425,15 @@ def plot_population(ds: xr.Dataset | Result, which: int | str = "mean", ax: Axes
         j = int(which)
         f = float(ds["noise_frequency"].values[j])
         vals = np.asarray(ds[f"pixel_{kind}_noise"].values[:, j], dtype=float)
+        silent = int(np.sum(~(vals > 0)))  # e.g. pixels without traps that never switched
+        vals = vals[vals > 0]
+        if not vals.size:
+            return _note(ax, f"no pixel has noise at {_si(f, 'Hz')}")
         edges = np.geomspace(vals.min() * 0.9, vals.max() * 1.1, 30)
         ax.hist(vals, bins=edges, color=_MC_COLOR, alpha=0.7)
         ax.set_xscale("log")
-        ax.set_xlabel(f"pixel noise at {_si(f, 'Hz')} [{unit}^2/Hz]")
+        ax.set_xlabel(f"pixel noise at {_si(f, 'Hz')} [{unit}^2/Hz]"
+                      + (f" ({silent} pixels without noise not shown)" if silent else ""))
         sub = f"spread of the noise across pixels at {_si(f, 'Hz')}"
         thr = ds.attrs.get("population_threshold")
         if thr is not None and "fraction_above_threshold" in ds:
@@ -582,6 +599,65 @@ def plot_sweep_noise(ds: xr.Dataset | Result, ax: Axes | None = None) -> Axes:
     return ax
 
 
+def plot_population_sweep(ds: xr.Dataset | Result, which: str = "telegraph",
+                          ax: Axes | None = None) -> Axes:
+    """A sweep of pixel populations: telegraph-like fraction or median noise against the
+    swept key (the pixel volume).
+
+    Parameters
+    ----------
+    ds : xarray.Dataset or Result  A sweep file with a population at every point
+    which : "telegraph" or "noise"
+        "telegraph": the fraction of pixels one single trap dominates, with its binomial
+        standard error, one line per chosen frequency.  "noise": the median over the pixels
+        of the readout noise relative to the squared mean readout (S / mean^2) [1/Hz], with
+        a line ~ 1/volume through the largest pixel (the area law of 1/f noise, common
+        practice).
+    ax : matplotlib Axes, optional
+
+    Returns
+    -------
+    Axes
+    """
+    ax = _new_axes(ax)
+    res = _as_result(ds)
+    ds = res.ds
+    if "telegraph_fraction" not in ds:
+        return _note(ax, "this file has no population per sweep point")
+    x, label = _swept_axis(ds)
+    order = np.argsort(x)
+    x = x[order]
+    freqs = np.asarray(ds["noise_frequency"].values, dtype=float)
+    kind = "current" if "pixel_current_relative_noise_median" in ds else "count"
+    for j, f in enumerate(freqs):
+        if which == "telegraph":
+            y = np.asarray(ds["telegraph_fraction"].values[:, j])[order]
+            e = np.asarray(ds["telegraph_fraction_stderr"].values[:, j])[order]
+            ax.errorbar(x, y, yerr=e, marker="o", ms=4, capsize=2, color=f"C{j}",
+                        label=f"at {_si(f, 'Hz')}")
+        else:
+            y = np.asarray(ds[f"pixel_{kind}_relative_noise_median"].values[:, j])[order]
+            ax.plot(x, y, marker="o", ms=4, color=f"C{j}", label=f"at {_si(f, 'Hz')}")
+            if np.isfinite(y[-1]) and y[-1] > 0:
+                ax.plot(x, y[-1] * x[-1] / x, color=f"C{j}", ls=":", lw=1,
+                        label="~ 1/volume (area law)" if j == 0 else None)
+    ax.set_xscale("log")
+    what = "current" if kind == "current" else "electron count"
+    if which == "telegraph":
+        ax.set_ylim(-0.02, 1.02)
+        ax.set_ylabel("fraction of telegraph-like pixels")
+        sub = "pixels one single trap dominates"
+    else:
+        ax.set_yscale("log")
+        ax.set_ylabel(f"median {what} noise / mean$^2$ [1/Hz]")
+        sub = "median relative noise of the pixels"
+    ax.set_xlabel(label)
+    ax.set_title(_title(res, sub, ax), fontsize=10)
+    ax.grid(True, which="both", alpha=0.3)
+    ax.legend(fontsize=8)
+    return ax
+
+
 # --------------------------------------------------------------------------------------------
 def _grid(n: int, size: tuple[float, float] = _PANEL) -> tuple[Any, list[Axes]]:
     from matplotlib.figure import Figure
@@ -612,6 +688,11 @@ def _plot_sweep(res: Result, out: Path, stem: str) -> list[Path]:
         fig, (ax,) = _grid(1, (7.2, 4.8))
         plot_sweep_noise(res, ax=ax)
         _save(fig, out / f"{stem}_readout_noise.png", written)
+    if res.has("telegraph_fraction"):  # a population at every point
+        fig, axes = _grid(2, (6.4, 4.8))
+        plot_population_sweep(res, "telegraph", ax=axes[0])
+        plot_population_sweep(res, "noise", ax=axes[1])
+        _save(fig, out / f"{stem}_population_sweep.png", written)
     return written
 
 
@@ -640,9 +721,11 @@ def plot_all(path_nc: str | os.PathLike[str] | Result, outdir: str | os.PathLike
     Returns
     -------
     list of Path  Written files, among ``<stem>_psd.png`` (count spectra, one panel per
-        species), ``<stem>_current_psd.png``, ``<stem>_transient.png``,
-        ``<stem>_histogram.png``, ``<stem>_population.png``, ``<stem>_worst_pixels.png``,
-        ``<stem>_rates.png`` and, for a sweep, ``<stem>_validity.png``; a figure whose
+        species, a spread trap level's sub-levels left out), ``<stem>_current_psd.png``,
+        ``<stem>_transient.png``, ``<stem>_histogram.png``, ``<stem>_population.png``,
+        ``<stem>_worst_pixels.png``, ``<stem>_rates.png`` and, for a sweep,
+        ``<stem>_validity.png`` (with a population per point also
+        ``<stem>_population_sweep.png``); a figure whose
         variables the file lacks is skipped (an empty list: nothing to draw).
     """
     if isinstance(path_nc, Result):
@@ -661,7 +744,8 @@ def plot_all(path_nc: str | os.PathLike[str] | Result, outdir: str | os.PathLike
     def save(fig: Any, name: str) -> None:
         _save(fig, out / f"{stem}_{name}.png", written)
 
-    names = list(res.species)
+    # a spread trap level's sub-levels stay in the file; the figures show the level's total
+    names = list(res.levels)
     if "psd" in ds and names:
         fig, axes = _grid(len(names))
         for name, ax in zip(names, axes):

@@ -87,7 +87,9 @@ def worst_pixels(noise_at_first: np.ndarray, n: int = 5) -> np.ndarray:
 def single_trap_share(model, freqs: np.ndarray, *, readout=None) -> float:
     """Largest share of the readout noise that one single trap adds, at each frequency.
 
-    For every trap level holding exactly one trap, the linear-noise spectrum of the readout
+    For every trap level (or sub-level of a level with a spread of time constants, whose
+    traps each have a time constant of their own) holding exactly one trap, the linear-noise
+    spectrum of the readout
     quantity (the current with a ``readout``, else the electron count) is compared with that
     of the same pixel without this trap: ``share = 1 - S_without / S_with``.  A pixel whose
     share exceeds one half is one whose spectrum a single trap dominates (telegraph-like:
@@ -105,8 +107,6 @@ def single_trap_share(model, freqs: np.ndarray, *, readout=None) -> float:
     -------
     ndarray (len(freqs),)  The largest share over single-trap levels (0 where there is none)
     """
-    import dataclasses
-
     from . import continuum
     from .model import build_model
     from .readout import lna_current
@@ -118,16 +118,14 @@ def single_trap_share(model, freqs: np.ndarray, *, readout=None) -> float:
         return np.real(smat[0, 0])
 
     share = np.zeros(len(freqs))
-    singles = [k for k, t in enumerate(model.counts.traps) if t == 1]
+    # a trap level, or a sub-level of a level with spread time constants, holding one trap
+    singles = [k for k, t in enumerate(model.level_counts) if t == 1]
     if not singles:
         return share
     full = readout_spectrum(model)
     for k in singles:
-        traps = list(model.counts.traps)
-        traps[k] = 0
         without = readout_spectrum(build_model(model.scenario,
-                                               counts=dataclasses.replace(model.counts,
-                                                                          traps=tuple(traps))))
+                                               counts=model.counts_without_trap(k)))
         with np.errstate(divide="ignore", invalid="ignore"):
             share = np.maximum(share, np.clip(1.0 - without / full, 0.0, 1.0))
     return share
@@ -168,8 +166,9 @@ def own_theory(rows, model_of, freqs: np.ndarray, *, readout=None) -> dict:
         ss = continuum.steady_state(m)
         smat = continuum.lna_psd(m, freqs)
         cur = lna_current(m, freqs, smat=smat, x=ss).psd if readout is not None else None
-        theory[counts] = (ss, np.diag(continuum.lna(m).covariance).copy(),
-                          np.real(np.einsum("iif->if", smat)), cur)
+        # on the file's species (a spread level's total beside its sub-levels)
+        theory[counts] = (m.project(ss), np.diag(m.project_matrix(continuum.lna(m).covariance)),
+                          np.real(np.einsum("iif->if", m.project_matrix(smat))), cur)
     own = [theory[row[4]] for row in rows]
     means = np.array([row[1] for row in rows])
     var = np.maximum(np.array([row[2] for row in rows]) - means**2, 0.0)

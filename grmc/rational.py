@@ -114,10 +114,11 @@ def _lna_curve(model, quantity: str):
     if quantity == "current":
         white = float(lna_current(model, np.array([0.0])).white)
         return (lambda f: lna_current(model, np.asarray(f, float)).psd), white
-    if quantity not in model.species:
+    if quantity not in model.output_species:  # a spread level's total among them
         raise ValueError(f"unknown quantity {quantity!r}")
-    i = list(model.species).index(quantity)
-    return (lambda f: np.real(continuum.lna_psd(model, np.asarray(f, float))[i, i])), 0.0
+    i = list(model.output_species).index(quantity)
+    return (lambda f: np.real(model.project_matrix(
+        continuum.lna_psd(model, np.asarray(f, float)))[i, i])), 0.0
 
 
 def lna_rational(model, quantity: str = "current") -> RationalSpectrum:

@@ -9,7 +9,7 @@ import math
 import numpy as np
 
 from .model import ELEMENTARY_CHARGE_C
-from .result import Result, from_dataset
+from .result import PowerLaw, Result, from_dataset, is_sublevel
 
 __all__ = ["format_run_table", "format_exact_table", "format_sweep_point", "FLAG_SIGMAS"]
 
@@ -84,6 +84,8 @@ def _species_rows(res: Result, first: str) -> list[str]:
         else fallback
     mark = _relative if res.exact else _flag
     for i, s in enumerate(res.species):
+        if is_sublevel(s):  # a spread level's total stands for its sub-levels
+            continue
         m, me = float(ds["stationary_mean"][i]), float(me_all[i])
         c = float(ds["steady_continuum"][i])
         v, ve = float(ds["stationary_var"][i]), float(ve_all[i])
@@ -100,7 +102,7 @@ def _pixel_rows(res: Result) -> list[str]:
     lines = [f"  {'species':<20}{'MC mean':>12}{'± s.e.':>10}{'continuum':>12}{'':>9}"
              f"{'MC var':>12}{'± s.e.':>10}{'LNA var':>12}{'':>9}"]
     n = res.ds.sizes["realization"]
-    for s in res.species:
+    for s in res.levels:
         cols = []
         for own, theory in (("trajectory_mean", "pixel_steady_continuum"),
                             ("pixel_var", "pixel_var_lna")):
@@ -128,7 +130,8 @@ def _spectral_lines(res: Result) -> list[str]:
     if "tau_spectrum" in ds:
         lines.append("  time constants from the spectra, tau = 1/(2 pi f_c):")
         for i, s in enumerate(res.species):
-            lines.append(f"    {s:<20}{_fit_text(ds, 'tau_spectrum', 'spectrum_kind', i)}")
+            if not is_sublevel(s):
+                lines.append(f"    {s:<20}{_fit_text(ds, 'tau_spectrum', 'spectrum_kind', i)}")
     if "relaxation_time_lna" in ds and ds["relaxation_time_lna"].size:
         times = ", ".join(_g(t, 3) for t in ds["relaxation_time_lna"].values)
         lines.append(f"  linear-noise relaxation times:      {times} s")
@@ -140,7 +143,7 @@ def _response_lines(res: Result) -> list[str]:
     if "response_amplitude" not in ds:
         return []
     lines = ["  response at the drive frequency (amplitude, phase vs sin(2 pi f t)):"]
-    rows = [(s, "", i) for i, s in enumerate(res.species)]
+    rows = [(s, "", i) for i, s in enumerate(res.species) if not is_sublevel(s)]
     if "current_response_amplitude" in ds:
         rows.append(("current", " A", None))
     for name, unit, i in rows:
@@ -156,6 +159,27 @@ def _response_lines(res: Result) -> list[str]:
             f"{_g(v('response_phase_stderr'), 2)} rad (continuum "
             f"{_g(v('response_phase_continuum'), 3)})")
     return lines
+
+
+def _flicker_line(fit: PowerLaw) -> str:
+    if not fit.ok:
+        return f"    {fit.quantity:<20}no fit"
+    corner = (f", meets the flat level at {_g(fit.corner_Hz, 3)} Hz"
+              if math.isfinite(fit.corner_Hz) else "")
+    return (f"    {fit.quantity:<20}alpha {_g(fit.alpha, 4)} ± {_g(fit.alpha_err, 2)}, "
+            f"K {_g(fit.K, 4)} ± {_g(fit.K_err, 2)} {fit.units}{corner}")
+
+
+def _flicker_lines(res: Result) -> list[str]:
+    """The 1/f fit S = K / f^alpha per species (sub-levels left out) and for the current."""
+    fits = [res.flicker(s) for s in (*res.levels, "current")]
+    fits = [f for f in fits if f is not None]
+    if not fits:
+        return []
+    band = fits[0].band
+    where = f" over {_g(band[0], 3)} - {_g(band[1], 3)} Hz" if band is not None else ""
+    return ([f"  1/f fit S = K / f^alpha{where} (K: S at 1 Hz):"]
+            + [_flicker_line(f) for f in fits])
 
 
 def _current_lines(res: Result) -> list[str]:
@@ -257,8 +281,8 @@ def format_run_table(ds, *, timing_note: str = TIMING_NOTE) -> str:
         lines.append("  note: the window starts with a pulse of excess pairs, so the time averages "
                      "above include the decay and are not stationary values; see the transient "
                      "(count_mean against count_continuum)")
-    for part in (_spectral_lines, _response_lines, _current_lines, _population_lines,
-                 _accuracy_lines):
+    for part in (_spectral_lines, _flicker_lines, _response_lines, _current_lines,
+                 _population_lines, _accuracy_lines):
         lines += part(res)
     lines += _speed_line(res, timing_note)
     return "\n".join(lines)

@@ -11,6 +11,7 @@ read_dataset(path) -> xarray.Dataset        (raises NotAGrmcFile)
 open_result(path) -> Result
 from_dataset(ds) -> Result
 Result.spectrum(quantity) -> Spectrum
+Result.flicker(quantity) -> PowerLaw or None
 """
 
 from __future__ import annotations
@@ -29,8 +30,8 @@ from . import spectra
 if TYPE_CHECKING:  # pragma: no cover
     import xarray as xr
 
-__all__ = ["NotAGrmcFile", "Spectrum", "Result", "read_dataset", "open_result", "from_dataset",
-           "METHOD_MC", "METHOD_EXACT", "METHOD_SWEEP", "DEVIATION_THRESHOLD", "crossing_count"]
+__all__ = ["NotAGrmcFile", "Spectrum", "PowerLaw", "Result", "is_sublevel", "read_dataset",
+           "open_result", "from_dataset", "METHOD_MC", "METHOD_EXACT", "METHOD_SWEEP", "DEVIATION_THRESHOLD", "crossing_count"]
 
 METHOD_MC, METHOD_EXACT, METHOD_SWEEP = "monte carlo", "exact", "sweep"
 #: A relative deviation of this size marks where the continuum answer fails (sweep files).
@@ -94,7 +95,43 @@ def read_dataset(path: str | os.PathLike[str]) -> xr.Dataset:
     return ds
 
 
+def is_sublevel(name: str) -> bool:
+    """True for a sub-level ``trapped:<label>#j`` of a trap level with a spread of time
+    constants: kept in the file, left out of tables and figures, which show the level's
+    total ``trapped:<label>``."""
+    return "#" in str(name)
+
+
 # --------------------------------------------------------------------------------------------
+@dataclass(frozen=True)
+class PowerLaw:
+    """The 1/f read-out S = K / (f / 1 Hz)^alpha of one quantity, as stored in a run file.
+
+    Attributes
+    ----------
+    quantity : str  "current" or a species name
+    K, K_err : float  Coefficient (S at 1 Hz) and its standard error [units]
+    alpha, alpha_err : float  Exponent and its standard error [1]
+    corner_Hz : float  Where the line meets a flat level (NaN where none) [Hz]
+    band : (float, float) or None  The fit band [Hz]
+    units : str  "A^2/Hz" or "counts^2/Hz"
+    """
+
+    quantity: str
+    K: float
+    K_err: float
+    alpha: float
+    alpha_err: float
+    corner_Hz: float
+    band: tuple[float, float] | None
+    units: str
+
+    @property
+    def ok(self) -> bool:
+        """True where a line was fitted."""
+        return math.isfinite(self.K) and math.isfinite(self.alpha)
+
+
 @dataclass(frozen=True)
 class Spectrum:
     """One spectrum of a file with its interval and theory line.
@@ -211,6 +248,35 @@ class Result:
         method = str(ds["method"].values) if "method" in ds else METHOD_MC
         return from_dataset(ds, method=METHOD_EXACT if method == "exact" else METHOD_MC,
                             note=f"(sweep point {index + 1} of {self.ds.sizes['sweep']})")
+
+    @property
+    def levels(self) -> tuple[str, ...]:
+        """The species tables and figures show: every species but the sub-levels of spread
+        trap levels (:func:`is_sublevel`; their level's total stands for them)."""
+        return tuple(s for s in self.species if not is_sublevel(s))
+
+    def flicker(self, quantity: str) -> PowerLaw | None:
+        """The stored 1/f fit of ``quantity`` ("current" or a species), None where the file
+        has none."""
+        band = self.ds.attrs.get("flicker_band_Hz")
+        band = None if band is None else (float(band[0]), float(band[1]))
+        if quantity == "current":
+            if "current_flicker_exponent" not in self.ds:
+                return None
+            pre, units = "current_", "A^2/Hz"
+
+            def get(key):
+                return float(self.ds[pre + key].values)
+        else:
+            if "flicker_exponent" not in self.ds or quantity not in self.species:
+                return None
+            units = "counts^2/Hz"
+
+            def get(key):
+                return float(self.values(key, quantity))
+        return PowerLaw(quantity, get("flicker_coefficient"), get("flicker_coefficient_stderr"),
+                        get("flicker_exponent"), get("flicker_exponent_stderr"),
+                        get("flicker_corner_frequency"), band, units)
 
     def spectrum(self, quantity: str | None = None) -> Spectrum:
         """The spectrum of ``quantity`` ("current" or a species; default the current where

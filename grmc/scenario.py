@@ -140,6 +140,11 @@ class Trap:
     kind : "acceptor" or "donor"  Charge states 0/-1 (acceptor) or +1/0 (donor)
     electron_capture_cm3_s : float  c_n = sigma_n v_th [cm^3 s^-1]
     hole_capture_cm3_s : float  c_p = sigma_p v_th [cm^3 s^-1]
+    spread_decades : float  D: capture and emission coefficients of the level's traps are
+        scaled together by a factor spread log-uniformly over D decades below the given ones
+        (0: every trap as given) [decades]
+    sublevels_per_decade : int or None  Sub-levels per decade of that spread (None: the
+        model's default, two) [1/decade]
     """
 
     label: str
@@ -150,6 +155,8 @@ class Trap:
     kind: Literal["acceptor", "donor"]
     electron_capture_cm3_s: float
     hole_capture_cm3_s: float
+    spread_decades: float = 0.0
+    sublevels_per_decade: int | None = None
 
 
 @dataclass(frozen=True)
@@ -219,6 +226,8 @@ class RunSettings:
     accuracy : float, optional  Target relative 95 % half-width; the run goes in rounds
     band_Hz : (float, float), optional  Band the accuracy is asked over [Hz]
     max_seconds : float  Time budget of a run in rounds [s]
+    flicker_band_Hz : (float, float) or None  Band of the 1/f fit (default: the inner band
+        of the trap levels' spread of time constants) [Hz]
     """
 
     trajectories: int = 256
@@ -230,6 +239,7 @@ class RunSettings:
     accuracy: float | None = None
     band_Hz: tuple[float, float] | None = None
     max_seconds: float = 600.0
+    flicker_band_Hz: tuple[float, float] | None = None
 
 
 @dataclass(frozen=True)
@@ -415,6 +425,8 @@ _TRAP = {
     "electron_cross_section_cm2": _F(lo=0.0, hi=1e-8),
     "hole_cross_section_cm2": _F(lo=0.0, hi=1e-8),
     "thermal_velocity_cm_s": _F(lo=0.0, lo_open=True, hi=3e10),
+    "spread_decades": _F(default=0.0, lo=0.0, hi=12.0),
+    "sublevels_per_decade": _I(lo=1, hi=20),
 }
 _LIGHT = {
     "generation_cm3_s": _F(default=0.0, lo=0.0, hi=1e40),
@@ -433,6 +445,7 @@ _RUN = {
     "accuracy": _F(lo=0.0, lo_open=True),
     "band_Hz": _Key("band"),
     "max_seconds": _F(default=600.0, lo=0.0, lo_open=True),
+    "flicker_band_Hz": _Key("band"),
 }
 _POPULATION = {
     "frequencies_Hz": _Key("floatlist", required=True, lo=0.0, lo_open=True, hi=1e15),
@@ -718,6 +731,11 @@ def _parse_trap(src: str, index: int, table: Any, volume: Volume, material: Mate
             src, section, "thermal_velocity_cm_s",
             "is used only with a cross section; it would be ignored here",
         )
+    if vals["sublevels_per_decade"] is not None and vals["spread_decades"] == 0.0:
+        raise ScenarioError(
+            src, section, "sublevels_per_decade",
+            "is used only with spread_decades > 0; it would be ignored here",
+        )
     if caps["electron"] == 0.0 and caps["hole"] == 0.0:
         raise ScenarioError(
             src, section, "electron_capture_cm3_s",
@@ -732,6 +750,8 @@ def _parse_trap(src: str, index: int, table: Any, volume: Volume, material: Mate
         kind=vals["kind"],
         electron_capture_cm3_s=caps["electron"],
         hole_capture_cm3_s=caps["hole"],
+        spread_decades=vals["spread_decades"],
+        sublevels_per_decade=vals["sublevels_per_decade"],
     )
 
 

@@ -22,9 +22,10 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
+from . import spread
 from .accumulators import Accumulators
 from .dataset import finish
-from .derived import derive
+from .derived import derive, flicker_band
 from .engine.ensemble import default_workers
 from .plan import OVERSAMPLE, Plan, Prepared, SlicePlan, make_plan, prepare, slice_plan, start_state
 from .readout import describe_current
@@ -182,12 +183,14 @@ def assemble(plan: Plan, acc: Accumulators, *, wall_time_s: float, command: str 
         data.update(acc.current_spectrum.variables(plan))
     t = np.arange(rs.samples) * (rs.duration_s / rs.samples)
     freqs = plan.frequencies
-    data.update(theory(model0, freqs, times=t, start=data["count_mean"][1][:, 0],
+    # the transient starts from the simulated mean, lifted onto the model's species
+    data.update(theory(model0, freqs, times=t,
+                       start=spread.lift(model0, data["count_mean"][1][:, 0]),
                        current=plan.current, drive=acc.drive is not None,
                        steady=plan.base.steady).variables)
     coords = {
         "t": ("t", t),
-        "species": ("species", np.array(list(model0.species), dtype=object)),
+        "species": ("species", np.array(list(plan.species), dtype=object)),
         "frequency": ("frequency", freqs),
         "channel": ("channel", np.array(plan.names, dtype=object)),
         "realization": ("realization", np.arange(n, dtype=np.int64)),
@@ -237,4 +240,7 @@ def _attributes(plan: Plan, acc: Accumulators, wall_time_s: float) -> dict:
         })
     for tr, total in zip(scenario.traps, counts0.traps):
         attrs[f"trap_count_{tr.label}"] = int(total)
+    band = flicker_band(plan)
+    if band is not None:
+        attrs["flicker_band_Hz"] = np.array(band)
     return attrs

@@ -11,7 +11,7 @@ import math
 
 import numpy as np
 
-from . import continuum
+from . import continuum, spread
 from .cost import WARN_EVENTS, cost_warnings, estimate
 from .model import build_model, nominal_counts, trap_means
 from .next_order import next_order
@@ -61,14 +61,17 @@ def summarize(scenario: Scenario) -> dict:
 
     if mat.record is not None:
         warnings.extend(f"[material] {w}" for w in mat.record.warnings)
-    ss = continuum.steady_state(model)
+    ss_model = continuum.steady_state(model)
     lna = continuum.lna(model)
-    var = np.diag(lna.covariance)
-    x0 = model.nearest_neutral_state(ss)
-    rate = float(model.propensities(x0).sum())
+    x0_model = model.nearest_neutral_state(ss_model)
+    # the file's species: a spread level's total beside its sub-levels
+    ss, var = model.project(ss_model), np.diag(model.project_matrix(lna.covariance))
+    x0 = np.rint(model.project(x0_model)).astype(np.int64)
+    band = spread.spread_band(model, ss_model)
+    rate = float(model.propensities(x0_model).sum())
     run = scenario.run
     events = rate * (run.settle_s + run.duration_s) * run.trajectories
-    for name, mean in zip(model.species, ss):
+    for name, mean in zip(model.output_species, ss):
         if name.startswith("trapped:"):
             continue
         if mean < FEW_CARRIERS:
@@ -77,8 +80,8 @@ def summarize(scenario: Scenario) -> dict:
                 "continuum and linear-noise answers are not to be trusted here"
             )
     warnings.extend(cost_warnings(estimate(scenario, model, rate)))
-    correction = next_order(model).delta
-    warnings.extend(_correction_warnings(model.species, ss, correction))
+    correction = model.project(next_order(model).delta)
+    warnings.extend(_correction_warnings(model.output_species, ss, correction))
     times = [float(t) for t in lna.relaxation_times]
     if times and run.duration_s < 20.0 * max(times):
         warnings.append(
@@ -98,7 +101,7 @@ def summarize(scenario: Scenario) -> dict:
         "material_name": _material_name(scenario),
         "material": _material(scenario),
         "trap_energy_eV": {t.label: t.energy_eV for t in scenario.traps},
-        "species": list(model.species),
+        "species": list(model.output_species),
         "counts": {
             "donors": counts.donors,
             "acceptors": counts.acceptors,
@@ -106,11 +109,12 @@ def summarize(scenario: Scenario) -> dict:
         },
         "conserved_charge": model.charge,
         "channels": [c.name for c in model.channels],
-        "steady_continuum": {s: float(v) for s, v in zip(model.species, ss)},
-        "var_lna": {s: float(v) for s, v in zip(model.species, var)},
-        "mean_next_order": {s: float(v) for s, v in zip(model.species, correction)},
-        "steady_density_cm3": {s: float(v) / vol for s, v in zip(model.species, ss)},
-        "start_state": {s: int(v) for s, v in zip(model.species, x0)},
+        "steady_continuum": {s: float(v) for s, v in zip(model.output_species, ss)},
+        "var_lna": {s: float(v) for s, v in zip(model.output_species, var)},
+        "mean_next_order": {s: float(v) for s, v in zip(model.output_species, correction)},
+        "steady_density_cm3": {s: float(v) / vol for s, v in zip(model.output_species, ss)},
+        "start_state": {s: int(v) for s, v in zip(model.output_species, x0)},
+        "flicker_band_Hz": None if band is None else list(band),
         "relaxation_times_s": times,
         "event_rate_per_trajectory_s": rate,
         "expected_events": events,
@@ -229,6 +233,9 @@ def format_summary(info: dict) -> str:
                      f"{_eng(v):>14}{fano:>8}{info['start_state'][s]:>10}")
     lines.extend(_next_order_lines(info))
     lines.append("")
+    if info.get("flicker_band_Hz"):
+        lo, hi = info["flicker_band_Hz"]
+        lines.append(f"  1/f band of the spread      {_eng(lo)} - {_eng(hi)} Hz")
     if info["relaxation_times_s"]:
         times = ", ".join(_eng(t) for t in info["relaxation_times_s"])
         lines.append(f"  relaxation times (LNA)      {times} s")

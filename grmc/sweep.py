@@ -190,7 +190,8 @@ def _lna_tau(model) -> tuple[np.ndarray, np.ndarray, np.ndarray, float]:
     var = th.variables["var_lna"][1]
     times = th.variables["relaxation_time_lna"][1]
     f0 = 1e-4 / (2 * math.pi * times.max()) if times.size else 1.0
-    s0 = np.real(np.einsum("iif->if", continuum.lna_psd(model, np.array([f0]))))[:, 0]
+    smat = model.project_matrix(continuum.lna_psd(model, np.array([f0])))
+    s0 = np.real(np.einsum("iif->if", smat))[:, 0]
     with np.errstate(divide="ignore", invalid="ignore"):
         tau = np.where(var > 0, s0 / (4 * var), np.nan)
     return th.steady, var, tau, f0
@@ -206,7 +207,11 @@ def evaluate_point(scenario: Scenario, index: int, *, exact_limit: int = EXACT_S
     ``mean``, ``mean_err``, ``var``, ``var_err``, ``tau``, ``tau_err``, ``continuum``,
     ``var_lna``, ``tau_lna``; ``intrinsic_density`` [cm^-3] and ``band_gap`` [eV] (NaN
     without a library material); with a ``[readout]`` the lists ``current_psd``,
-    ``current_psd_lna`` and ``current_psd_photon`` at ``noise_frequencies`` [A^2/Hz].
+    ``current_psd_lna`` and ``current_psd_photon`` at ``noise_frequencies`` [A^2/Hz].  With
+    a ``[population]`` the point is always a Monte Carlo population and the dict also holds
+    its per-frequency ``telegraph_fraction`` (with ``_stderr``), ``noise_median`` and
+    ``relative_noise_median`` (:func:`_population_of`).  With a spread trap level the
+    species are the output species (the level's total beside its sub-levels).
     """
     from . import exact
     from .model import build_model
@@ -214,22 +219,32 @@ def evaluate_point(scenario: Scenario, index: int, *, exact_limit: int = EXACT_S
     model = build_model(scenario)
     ss, var_lna, tau_lna, f0 = _lna_tau(model)
     noise_f = np.asarray(noise_frequencies, dtype=float)
-    out: dict[str, Any] = {"index": index, "species": list(model.species)}
+    out: dict[str, Any] = {"index": index, "species": list(model.output_species)}
     current = None
-    try:
-        res = exact.solve(model, freqs=np.concatenate([[f0], noise_f]), max_states=exact_limit)
+    res = None
+    if scenario.population is None:  # a population needs its pixels simulated
+        try:
+            res = exact.solve(model, freqs=np.concatenate([[f0], noise_f]),
+                              max_states=exact_limit)
+        except exact.ExactRefusal:  # too many states, or too stiff: Monte Carlo instead
+            res = None
+    if res is not None:
         if scenario.readout is not None:
             from .readout import exact_current
 
             current = exact_current(model, res).psd[1:]
-        s0 = res.psd[:, 0]
+        if model.has_sublevels:  # the output species: a spread level's total beside its parts
+            s0 = np.real(np.einsum("iif->if", model.project_matrix(res.psd_matrix[:, :, :1])))
+            s0, var = s0[:, 0], np.diag(model.project_matrix(res.covariance))
+        else:
+            s0, var = res.psd[:, 0], res.var
         with np.errstate(divide="ignore", invalid="ignore"):
-            tau = np.where(res.var > 0, s0 / (4 * res.var), np.nan)
-        zeros = np.zeros(model.n_species)
-        out.update(method="exact", n_states=int(res.n_states), mean=res.mean, mean_err=zeros,
-                   var=res.var, var_err=zeros, tau=tau, tau_err=zeros,
+            tau = np.where(var > 0, s0 / (4 * var), np.nan)
+        zeros = np.zeros(len(model.output_species))
+        out.update(method="exact", n_states=int(res.n_states), mean=model.project(res.mean),
+                   mean_err=zeros, var=var, var_err=zeros, tau=tau, tau_err=zeros,
                    probability_outside=float(res.mass_outside))
-    except exact.ExactRefusal:  # too many states, or too stiff: Monte Carlo instead
+    else:
         from .cost import refuse_absurd, run_cost
         from .simulate import run
 
@@ -249,9 +264,10 @@ def evaluate_point(scenario: Scenario, index: int, *, exact_limit: int = EXACT_S
         out.update(method="monte carlo", seed=seed, trajectories=int(ds.attrs["trajectories"]),
                    mean=ds["stationary_mean"].values, mean_err=ds["stationary_mean_stderr"].values,
                    var=var, var_err=ds["stationary_var_stderr"].values, tau=tau, tau_err=tau_err)
+        out.update(_population_of(ds))
         if "current_psd" in ds:
             current = _log_interp(noise_f, ds["frequency"].values, ds["current_psd"].values)
-    out.update(continuum=ss, var_lna=var_lna, tau_lna=tau_lna)
+    out.update(continuum=model.project(ss), var_lna=var_lna, tau_lna=tau_lna)
     mat = scenario.material
     gap = None if mat.record is None else mat.record.value("band_gap_eV")
     out.update(intrinsic_density=mat.intrinsic_density_cm3,
@@ -263,6 +279,25 @@ def evaluate_point(scenario: Scenario, index: int, *, exact_limit: int = EXACT_S
                    current_psd_photon=photon_current_psd(model, noise_f))
     return {k: (np.asarray(v, dtype=float).tolist() if isinstance(v, np.ndarray) else v)
             for k, v in out.items()}
+
+
+def _population_of(ds) -> dict:
+    """A population point's summary per chosen frequency: the fraction of telegraph-like
+    pixels with its binomial standard error, the median pixel noise [unit^2/Hz] and the median
+    relative noise S / mean^2 (mean: the pixel's mean readout) [Hz^-1]; empty without one."""
+    if "telegraph_fraction" not in ds:
+        return {}
+    kind = "current" if "pixel_current_noise" in ds else "count"
+    noise = ds[f"pixel_{kind}_noise"].values
+    mean = ds[f"pixel_{kind}_mean"].values
+    with np.errstate(divide="ignore", invalid="ignore"):
+        rel = noise / mean[:, None] ** 2
+    return {"population_kind": kind,
+            "noise_frequency": ds["noise_frequency"].values,
+            "telegraph_fraction": ds["telegraph_fraction"].values,
+            "telegraph_fraction_stderr": ds["telegraph_fraction_stderr"].values,
+            "noise_median": np.median(noise, axis=0),
+            "relative_noise_median": np.median(rel, axis=0)}
 
 
 def _log_interp(f: np.ndarray, freqs: np.ndarray, psd: np.ndarray) -> np.ndarray:
@@ -504,6 +539,17 @@ def assemble(scenario: Scenario, varies: list[Vary], results: list[dict], *,
         "sweep": ("sweep", np.arange(len(results), dtype=np.int64)),
         "species": ("species", np.array(species, dtype=object)),
     }
+    if all("telegraph_fraction" in r for r in results):  # a population at every point
+        kind = results[0]["population_kind"]
+        nf = ("sweep", "noise_frequency")
+        variables.update({
+            "telegraph_fraction": (nf, stack("telegraph_fraction")),
+            "telegraph_fraction_stderr": (nf, stack("telegraph_fraction_stderr")),
+            f"pixel_{kind}_noise_median": (nf, stack("noise_median")),
+            f"pixel_{kind}_relative_noise_median": (nf, stack("relative_noise_median")),
+        })
+        coords["noise_frequency"] = ("noise_frequency",
+                                     np.asarray(results[0]["noise_frequency"], dtype=float))
     if "current_psd_lna" in results[0]:
         coords["frequency"] = ("frequency", np.asarray(noise_frequencies, dtype=float))
         for name in ("current_psd", "current_psd_lna", "current_psd_photon"):
