@@ -176,7 +176,7 @@ def test_stream_state_is_seedsequence_and_distinct():
     (1.0e-8, 0, 2.0e-8, 64, 8),    # bins much denser than events
 ])
 def test_kernel_equals_oracle(small, settle_s, excess_pairs, duration_s, n_samples, oversample):
-    """Architecture rule 4: the compiled kernel and its plain-Python oracle give identical
+    """Every kernel has an oracle (DEVELOPERS.md): the compiled kernel and its plain-Python oracle give identical
     trajectories for a seed (samples, bins, integrals, events, final state, stream state)."""
     m, arr, x0 = small
     excess = np.zeros(m.n_species, dtype=np.int64)
@@ -393,7 +393,7 @@ def test_absorbing_state():
 
 
 def test_invalid_inputs_are_refused(small):
-    """Refuse untrustworthy numbers (architecture rule 7): a dependency list missing a
+    """Refuse untrustworthy numbers: a dependency list missing a
     channel, an out-of-range state or a bad stream state raise instead of running."""
     _, arr, x0 = small
     kw = {"x0": x0, "duration_s": 1e-7, "n_samples": 4}

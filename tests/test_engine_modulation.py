@@ -108,7 +108,7 @@ def test_without_options_the_stored_run_is_reproduced(small, engine):
     (None, True),                                         # flows alone
 ])
 def test_kernel_equals_oracle_with_options(small, modulation, flows):
-    """Architecture rule 4 extended: kernel and plain-Python oracle are bit-identical with a
+    """Every kernel has an oracle (DEVELOPERS.md), extended: kernel and plain-Python oracle are bit-identical with a
     modulated channel (sine, square; thinning draws a third uniform, module notes step 5a)
     and with flow recording, through settling (where the modulation runs on window time
     t - settle_s) and an excess; the stream ends in the same state."""
@@ -151,7 +151,7 @@ def test_flows_add_up_and_sit_in_the_right_bins(small):
 
 
 def test_invalid_options_are_refused(small):
-    """Refuse untrustworthy inputs (architecture rule 7): a depth outside [0, 1] (h < 0),
+    """Refuse untrustworthy inputs: a depth outside [0, 1] (h < 0),
     an unknown kind, a channel out of range, a negative frequency, flow weights of the
     wrong shape or not integers."""
     _, arr, x0 = small
