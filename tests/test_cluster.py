@@ -57,8 +57,11 @@ def _same_data(a, b) -> None:
 def cluster():
     from dask.distributed import Client, LocalCluster
 
-    with LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
-                      dashboard_address=None) as lc, Client(lc, set_as_default=False) as client:
+    # no dashboard; the scheduler's small HTTP server on a free local port (its default,
+    # 8787, may be taken by another cluster on the machine)
+    with LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None,
+                      scheduler_kwargs={"dashboard_address": "127.0.0.1:0"}) as lc, \
+            Client(lc, set_as_default=False) as client:
         yield lc, client
 
 
