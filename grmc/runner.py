@@ -28,6 +28,7 @@ from .chunk import reduce_chunk
 from .engine.ensemble import default_workers
 from .parts import Parts
 from .plan import Plan
+from .prefetch import prefetch
 
 __all__ = ["ChunkRunner", "Threads"]
 
@@ -141,6 +142,7 @@ class ChunkRunner:
         KeyboardInterrupt
             When interrupted; the chunks finished so far stay in the parts folder.
         """
+        prefetch()  # the output stage's imports, while the chunks run
         backend = self.backend if self.backend is not None else Threads(workers)
         tick = bar.update if bar is not None else _never
         units = plan.slices.units
