@@ -10,13 +10,15 @@ doubling until every species' stationary mean and variance and every band of the
 current spectra inside the band are within +-5 % (95 %), or the budget stops it.  Printed
 per scenario: the band, rounds, final trajectories, events simulated (window only), the wall
 time of the rounds, the events per second and the accuracy reached ("budget" marks a run the
-budget stopped, with what it reached).
+budget stopped, with what it reached).  ``--choose-window`` removes ``duration_s``,
+``samples`` and ``settle_s`` from each scenario, so grmc chooses them from the band.
 """
 
 from __future__ import annotations
 
 import argparse
 import os
+import re
 import sys
 import time
 from pathlib import Path
@@ -35,19 +37,25 @@ def main() -> None:
     ap.add_argument("--max-seconds", type=float, default=600.0)
     ap.add_argument("--workers", type=int, default=None)
     ap.add_argument("--only", action="append", help="scenario stem (repeatable)")
+    ap.add_argument("--choose-window", action="store_true",
+                    help="leave duration_s, samples and settle_s out (grmc chooses them)")
     args = ap.parse_args()
     paths = sorted((ROOT / "scenarios").glob("*.toml"))
     if args.only:
         paths = [p for p in paths if p.stem in args.only]
     load = os.getloadavg()[0] if hasattr(os, "getloadavg") else float("nan")
     print(f"grmc {grmc.__version__}, target +-{100 * args.accuracy:g} % over the default band, "
-          f"budget {args.max_seconds:g} s per scenario, load average {load:.2f}")
+          f"budget {args.max_seconds:g} s per scenario, load average {load:.2f}"
+          + (", window chosen by grmc" if args.choose_window else ", the scenarios' windows"))
     head = (f"| {'scenario':<26} | {'band [Hz]':<17} | rounds | trajectories | events    "
             f"| wall [s] | M events/s | reached |")
     print(head)
     print("|" + "|".join("-" * (len(c)) for c in head.split("|")[1:-1]) + "|")
     for path in paths:
-        scen = grmc.load_scenario(path)
+        text = path.read_text()
+        if args.choose_window:
+            text = re.sub(r"(?m)^(duration_s|samples|settle_s)\s*=.*$", "", text)
+        scen = grmc.load_scenario(text=text)
         t0 = time.perf_counter()
         try:
             ds = run(scen, accuracy=args.accuracy, max_seconds=args.max_seconds,

@@ -25,14 +25,14 @@ from .chunk import reduce_chunk
 from .engine.ensemble import map_chunks
 from .plan import Plan, trajectory_chunks
 
-__all__ = ["BATCH_CHUNKS", "Outcome", "run_ensemble", "run_rounds"]
+__all__ = ["BATCH_CHUNKS", "Outcome", "RoundBar", "run_ensemble", "run_rounds"]
 
 #: Chunks handed to the threads at once; their results are merged before the next batch,
 #: which bounds the memory held by chunk results.
 BATCH_CHUNKS = 64
 
 
-class _Bar:
+class RoundBar:
     """One progress bar over a run (tqdm; silent unless asked or on a terminal)."""
 
     def __init__(self, progress: bool | None, total: int, description: str):
@@ -56,7 +56,7 @@ class _Bar:
 
 
 def run_ensemble(plan: Plan, indices: range, acc: Accumulators, *, workers: int | None = None,
-                 bar: _Bar | None = None, runner=None) -> Accumulators:
+                 bar: RoundBar | None = None, runner=None) -> Accumulators:
     """Fold trajectories ``indices`` of ``plan`` into ``acc`` (threads; chunk order kept).
 
     Parameters
@@ -135,7 +135,7 @@ def run_rounds(plan: Plan, *, first: int, accuracy: float, band_Hz: tuple[float,
     acc = Accumulators.for_plan(plan)
     total, size, rounds, reached = 0, int(first), 0, None
     units = plan.slices.units
-    bar = _Bar(progress, size * units, _label(0, 0, size, None, accuracy))
+    bar = RoundBar(progress, size * units, _label(0, 0, size, None, accuracy))
     t0 = time.perf_counter()
     try:
         while True:

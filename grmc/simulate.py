@@ -26,10 +26,9 @@ from .accumulators import Accumulators
 from .dataset import finish
 from .derived import derive
 from .engine.ensemble import default_workers
-from .plan import (OVERSAMPLE, Plan, Prepared, SlicePlan, make_plan, prepare, slice_plan,
-                   start_state)
+from .plan import OVERSAMPLE, Plan, Prepared, SlicePlan, make_plan, prepare, slice_plan, start_state
 from .readout import describe_current
-from .rounds import _Bar, run_ensemble, run_rounds
+from .rounds import RoundBar, run_ensemble, run_rounds
 from .scenario import Scenario
 from .theory import theory
 from .window import choose_window, given_run_keys
@@ -116,7 +115,7 @@ def run(
                                 command=command, runner=runner)
     plan = make_plan(scenario, slice_events=SLICE_EVENTS)
     t0 = time.perf_counter()
-    bar = _Bar(progress, rs.trajectories * plan.slices.units,
+    bar = RoundBar(progress, rs.trajectories * plan.slices.units,
                f"trajectories ({plan.slices.units} time slices each)")
     try:
         acc = run_ensemble(plan, range(rs.trajectories), Accumulators.for_plan(plan),

@@ -31,7 +31,7 @@ import numpy as np
 from .bands import BANDS_PER_DECADE
 from .model import build_model
 from .plan import OVERSAMPLE
-from .scenario import Scenario, ScenarioError
+from .scenario import Scenario, ScenarioError, check_band
 from .theory import theory
 
 __all__ = ["Choice", "choose_window", "given_run_keys", "MAX_SAMPLES", "MIN_BAND_FREQUENCIES",
@@ -100,6 +100,18 @@ def _refuse(scenario: Scenario, key: str, message: str):
     raise ScenarioError(scenario.source, "run", key, message)
 
 
+def check_target(scenario: Scenario) -> None:
+    """Refuse an accuracy outside (0, 1), a band without 0 < f1 < f2, or a budget <= 0 given
+    through the Python interface (the scenario file and the command line check their own)."""
+    rs = scenario.run
+    if not 0.0 < rs.accuracy < 1.0:
+        _refuse(scenario, "accuracy", f"must be between 0 and 1, got {rs.accuracy!r}")
+    if rs.band_Hz is not None:
+        check_band(rs.band_Hz, lambda msg: _refuse(scenario, "band_Hz", msg))
+    if not rs.max_seconds > 0:
+        _refuse(scenario, "max_seconds", f"must be > 0, got {rs.max_seconds!r}")
+
+
 def choose_window(scenario: Scenario, *, accuracy: float, band_Hz: tuple | None,
                   max_seconds: float, first: int | None, workers: int) -> Choice:
     """Fill in what the accuracy target leaves open and check the band can be resolved.
@@ -123,6 +135,7 @@ def choose_window(scenario: Scenario, *, accuracy: float, band_Hz: tuple | None,
         The band cannot be resolved in one window, by the given window, or within the budget
         (names ``band_Hz``).
     """
+    check_target(scenario)
     rs, given = scenario.run, given_run_keys(scenario)
     model = build_model(scenario)
     th = theory(model)

@@ -210,6 +210,16 @@ def test_bad_scenario_keys_exit_2_naming_the_key(tmp_path, capsys, line, key):
     assert not out.exists()
 
 
+@pytest.mark.parametrize("option, value", [("accuracy", 0.0), ("accuracy", 1.5),
+                                           ("band_Hz", (2.0e4, 200.0)), ("max_seconds", -1.0)])
+def test_bad_values_from_python_are_refused_naming_the_key(option, value):
+    """The same values through grmc.run: a ScenarioError naming [run] and the key."""
+    scen = grmc.load_scenario(text=_bd_text("trajectories = 16"))
+    target = {"accuracy": 0.1, option: value}
+    with pytest.raises(grmc.ScenarioError, match=rf"\[run\] {option}"):
+        grmc.run(scen, progress=False, **target)
+
+
 def test_a_band_the_window_cannot_resolve_is_refused_before_simulating(tmp_path, capsys):
     """A given window of 1 ms cannot resolve 1 Hz (a band needs at least one Fourier
     frequency, 1/T apart): exit 2 naming [run] band_Hz, nothing written."""
