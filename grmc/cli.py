@@ -131,9 +131,22 @@ def _chunk_runner(args, out: Path):
         kept = len(list(parts.glob("chunk_*.pkl"))) if parts.is_dir() else 0
         if not kept:
             raise
-        again = args.command_line if args.resume else f"{args.command_line} --resume"
-        raise CommandFailed(f"interrupted; {kept} finished chunks are kept in {parts}; "
-                            f"to continue, run: {again}", EXIT_INTERRUPTED) from None
+        raise CommandFailed(f"interrupted; {_resume_hint(args, parts, kept)}",
+                            EXIT_INTERRUPTED) from None
+    except Exception as exc:
+        if not type(exc).__module__.startswith("distributed"):
+            raise
+        # the cluster gave up on a chunk (e.g. it killed every worker that ran it)
+        kept = len(list(parts.glob("chunk_*.pkl"))) if parts.is_dir() else 0
+        hint = f"; {_resume_hint(args, parts, kept)}" if kept else ""
+        raise CommandFailed(f"--scheduler: the cluster failed: {type(exc).__name__}: "
+                            f"{str(exc).strip().splitlines()[0] if str(exc).strip() else ''}"
+                            f"{hint}", EXIT_FAIL) from None
+
+
+def _resume_hint(args, parts: Path, kept: int) -> str:
+    again = args.command_line if args.resume else f"{args.command_line} --resume"
+    return f"{kept} finished chunks are kept in {parts}; to continue, run: {again}"
 
 
 def _accuracy_options(args) -> dict:
