@@ -16,7 +16,6 @@ runner that keeps parts beside the output file.
 
 from __future__ import annotations
 
-import asyncio
 import logging
 import os
 from collections.abc import Iterator, Sequence
@@ -27,7 +26,8 @@ from .chunk import reduce_chunk
 from .plan import Plan
 from .runner import ChunkRunner, Threads
 
-__all__ = ["CONNECT_TIMEOUT_S", "SchedulerUnreachable", "BadSchedulerAddress", "Cluster", "connect", "open_runner"]
+__all__ = ["CONNECT_TIMEOUT_S", "SchedulerUnreachable", "BadSchedulerAddress", "Cluster",
+           "connect", "open_runner"]
 
 #: Seconds allowed to reach a scheduler before giving up.
 CONNECT_TIMEOUT_S = 5.0
@@ -81,6 +81,8 @@ def connect(address: str, *, timeout_s: float = CONNECT_TIMEOUT_S):
     SchedulerUnreachable
         Nothing answered within ``timeout_s``.
     """
+    import asyncio
+
     from dask.distributed import Client
 
     scheme = _probe(address, timeout_s)
