@@ -29,7 +29,8 @@ def run(scenario: Scenario, **options):
 
     The same as ``grmc run`` without writing a file; options as in
     :func:`grmc.simulate.run` (``trajectories``, ``seed``, ``workers``, ``progress``,
-    ``accuracy``, ``band_Hz``, ``max_seconds``).
+    ``accuracy``, ``band_Hz``, ``max_seconds``, and ``runner`` from
+    :func:`grmc.distributed.open_runner` for a Dask cluster or parts kept for a resume).
     """
     from .simulate import run as _run
 

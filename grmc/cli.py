@@ -19,6 +19,7 @@ import shlex
 import signal
 import sys
 import tempfile
+from contextlib import contextmanager
 from pathlib import Path
 
 from . import __version__
@@ -83,6 +84,14 @@ def _output_folder(value: str | None, default: Path, option: str = "-o") -> Path
         raise UsageError(f"{option} {path}: is a file, not a folder")
     _probe_folder(path, f"{option} {path}")
     return path
+
+
+class CommandFailed(Exception):
+    """A failure to report in one line with its own exit status."""
+
+    def __init__(self, message: str, status: int):
+        super().__init__(message)
+        self.status = status
 
 
 def _positive_int(text: str) -> int:
@@ -186,13 +195,60 @@ def cmd_run(args) -> int:
     out = _output_file(args.output, _default_output(args.scenario))
     _refuse_absurd_run(scenario, args.trajectories, args.workers)
     target = _accuracy_options(args)
-    ds = run(scenario, trajectories=args.trajectories, seed=args.seed, workers=args.workers,
-             progress=None if not args.quiet else False, command=args.command_line, **target)
-    save(ds, out)
+    with _chunk_runner(args, out) as runner:
+        ds = run(scenario, trajectories=args.trajectories, seed=args.seed, workers=args.workers,
+                 progress=None if not args.quiet else False, command=args.command_line,
+                 runner=runner, **target)
+        save(ds, out)
+        runner.finish()
     if not args.quiet:
         print(format_run_table(ds))
     print(f"wrote {out}")
     return EXIT_OK
+
+
+@contextmanager
+def _chunk_runner(args, out: Path):
+    """The chunk runner of ``--scheduler`` / ``--resume`` (:func:`grmc.distributed.open_runner`)
+    with their failures turned into one line: an unreachable scheduler (exit 1), parts of
+    another run (exit 2), an interruption that kept finished chunks (how to resume)."""
+    from .distributed import BadSchedulerAddress, SchedulerUnreachable, open_runner
+    from .parts import PartsRefused, parts_dir
+
+    parts = parts_dir(out)
+    if args.resume and not parts.exists():
+        print(f"grmc: --resume: nothing to resume ({parts} does not exist); running from the "
+              "first trajectory", file=sys.stderr)
+    try:
+        with open_runner(out, scheduler=args.scheduler, resume=args.resume,
+                         workers=args.workers) as runner:
+            yield runner
+    except SchedulerUnreachable as exc:
+        raise CommandFailed(f"--scheduler: {exc}", EXIT_FAIL) from None
+    except BadSchedulerAddress as exc:
+        raise UsageError(f"--scheduler: {exc}") from None
+    except PartsRefused as exc:
+        raise UsageError(str(exc)) from None
+    except KeyboardInterrupt:
+        kept = len(list(parts.glob("chunk_*.pkl"))) if parts.is_dir() else 0
+        if not kept:
+            raise
+        raise CommandFailed(f"interrupted; {_resume_hint(args, parts, kept)}",
+                            EXIT_INTERRUPTED) from None
+    except Exception as exc:
+        if not type(exc).__module__.startswith("distributed"):
+            raise
+        # the cluster gave up on a chunk (e.g. it killed every worker that ran it)
+        kept = len(list(parts.glob("chunk_*.pkl"))) if parts.is_dir() else 0
+        hint = f"; {_resume_hint(args, parts, kept)}" if kept else ""
+        raise CommandFailed(f"--scheduler: the cluster failed: {type(exc).__name__}: "
+                            f"{str(exc).strip().splitlines()[0] if str(exc).strip() else ''}"
+                            f"{hint}", EXIT_FAIL) from None
+
+
+def _resume_hint(args, parts: Path, kept: int) -> str:
+    again = args.command_line if args.resume else f"{args.command_line} --resume"
+    return f"{kept} finished chunks are kept in {parts}; to continue, run: {again}"
 
 
 def _accuracy_options(args) -> dict:
@@ -354,6 +410,16 @@ def cmd_demo(args) -> int:
 
 
 # ------------------------------------------------------------------------------ parser
+def _scale_out_options(p: argparse.ArgumentParser) -> None:
+    """``--scheduler`` and ``--resume`` of the commands that simulate an ensemble."""
+    p.add_argument("--scheduler", metavar="ADDRESS",
+                   help="run the trajectory chunks on a running Dask scheduler, e.g. "
+                        "tcp://10.0.0.5:8786 (--workers is then ignored)")
+    p.add_argument("--resume", action="store_true",
+                   help="continue an interrupted run from the finished chunks kept in "
+                        "<OUT>.parts/")
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = _Parser(
         prog="grmc",
@@ -380,6 +446,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--max-seconds", metavar="S",
                    help="time budget of a run in rounds; overrides [run] max_seconds "
                         "(default 600)")
+    _scale_out_options(p)
     p.add_argument("-q", "--quiet", action="store_true", help="no table, no progress bar")
     p.set_defaults(func=cmd_run)
 
@@ -450,6 +517,10 @@ def _dispatch(args) -> int:
     except (ScenarioError, UsageError) as exc:
         print(f"grmc: error: {exc}", file=sys.stderr)
         return EXIT_USAGE
+    except CommandFailed as exc:
+        kind = "" if exc.status == EXIT_INTERRUPTED else "error: "
+        print(f"grmc: {kind}{exc}", file=sys.stderr)
+        return exc.status
     except Terminated:
         print("grmc: terminated; no output written", file=sys.stderr)
         return EXIT_TERMINATED

@@ -56,7 +56,7 @@ class RoundBar:
 
 
 def run_ensemble(plan: Plan, indices: range, acc: Accumulators, *, workers: int | None = None,
-                 bar: RoundBar | None = None) -> Accumulators:
+                 bar: RoundBar | None = None, runner=None) -> Accumulators:
     """Fold trajectories ``indices`` of ``plan`` into ``acc`` (threads; chunk order kept).
 
     Parameters
@@ -66,7 +66,12 @@ def run_ensemble(plan: Plan, indices: range, acc: Accumulators, *, workers: int 
     acc : Accumulators  The running accumulators, changed in place and returned
     workers : int, optional  Threads (default: all cores); the data do not depend on it
     bar : optional  Progress bar, advanced by one unit per engine call
+    runner : ChunkRunner, optional  Reduces the chunks instead (:mod:`grmc.runner`: a
+        cluster's workers, parts kept for a resume)
     """
+    if runner is not None:
+        return runner.fold(plan, trajectory_chunks(indices.start, indices.stop), acc,
+                           workers=workers, bar=bar)
     tick = bar.update if bar is not None else (lambda units: None)
 
     def work(chunk, cancel, _tick):
@@ -108,7 +113,7 @@ def _label(rounds: int, total: int, size: int, worst: float | None, target: floa
 
 def run_rounds(plan: Plan, *, first: int, accuracy: float, band_Hz: tuple[float, float],
                max_seconds: float, workers: int | None = None,
-               progress: bool | None = None) -> Outcome:
+               progress: bool | None = None, runner=None) -> Outcome:
     """Run rounds of trajectories until the accuracy is reached or the budget would be
     exceeded.
 
@@ -121,6 +126,7 @@ def run_rounds(plan: Plan, *, first: int, accuracy: float, band_Hz: tuple[float,
     max_seconds : float  Time budget [s]
     workers : int, optional  Threads
     progress : bool, optional  Progress bar
+    runner : ChunkRunner, optional  Reduces each round's chunks (see :func:`run_ensemble`)
 
     Returns
     -------
@@ -134,7 +140,8 @@ def run_rounds(plan: Plan, *, first: int, accuracy: float, band_Hz: tuple[float,
     try:
         while True:
             plan.check_pixels(total, total + size)
-            run_ensemble(plan, range(total, total + size), acc, workers=workers, bar=bar)
+            run_ensemble(plan, range(total, total + size), acc, workers=workers, bar=bar,
+                         runner=runner)
             total, rounds = total + size, rounds + 1
             reached = worst_half_width(plan, acc, band_Hz)
             if reached.worst <= accuracy:

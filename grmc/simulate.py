@@ -68,6 +68,7 @@ def run(
     accuracy: float | None = None,
     band_Hz: tuple[float, float] | None = None,
     max_seconds: float | None = None,
+    runner=None,
 ) -> xr.Dataset:
     """Run the ensemble of a scenario and return the output Dataset.
 
@@ -87,6 +88,9 @@ def run(
         must reach the accuracy in [Hz]
     max_seconds : float, optional  Override ``[run] max_seconds``, the time budget of a run
         in rounds [s]
+    runner : ChunkRunner, optional  Where the chunks are reduced and what is kept of them
+        (:func:`grmc.distributed.open_runner`: a Dask cluster, parts for a resume); default
+        this process's threads
 
     Returns
     -------
@@ -110,21 +114,22 @@ def run(
     rs = scenario.run
     if rs.accuracy is not None:
         return _run_to_accuracy(scenario, first=first, workers=workers, progress=progress,
-                                command=command)
+                                command=command, runner=runner)
     plan = make_plan(scenario, slice_events=SLICE_EVENTS)
     t0 = time.perf_counter()
     bar = RoundBar(progress, rs.trajectories * plan.slices.units,
                f"trajectories ({plan.slices.units} time slices each)")
     try:
         acc = run_ensemble(plan, range(rs.trajectories), Accumulators.for_plan(plan),
-                           workers=workers, bar=bar)
+                           workers=workers, bar=bar, runner=runner)
     finally:
         bar.close()
     return assemble(plan, acc, wall_time_s=time.perf_counter() - t0, command=command)
 
 
 def _run_to_accuracy(scenario: Scenario, *, first: int | None, workers: int | None,
-                     progress: bool | None, command: str | None) -> xr.Dataset:
+                     progress: bool | None, command: str | None,
+                     runner=None) -> xr.Dataset:
     """A run in rounds (:mod:`grmc.rounds`) with the window chosen where it was left out
     (:mod:`grmc.window`)."""
     rs = scenario.run
@@ -138,7 +143,8 @@ def _run_to_accuracy(scenario: Scenario, *, first: int | None, workers: int | No
             print(f"grmc: chose {line}", file=sys.stderr)
     plan = make_plan(choice.scenario, slice_events=SLICE_EVENTS)
     out = run_rounds(plan, first=choice.first, accuracy=rs.accuracy, band_Hz=choice.band_Hz,
-                     max_seconds=rs.max_seconds, workers=workers, progress=progress)
+                     max_seconds=rs.max_seconds, workers=workers, progress=progress,
+                     runner=runner)
     reached = out.reached
     if out.stopped_by == "budget":
         print(f"grmc: warning: time budget max_seconds = {rs.max_seconds:g} s reached after "

@@ -39,7 +39,7 @@ from typing import Any, Literal
 
 import numpy as np
 import scipy.fft
-from scipy import optimize, special, stats
+from scipy import optimize, special
 
 from .exact import telegraph_psd
 from .model import ELEMENTARY_CHARGE_C
@@ -72,6 +72,14 @@ P_REJECT = 1e-3
 
 #: Fewest usable frequencies per fitted parameter before a fit is attempted.
 _MIN_POINTS_PER_PARAMETER = 4
+
+
+def _chi2():
+    """``scipy.stats.chi2``, imported on first use (scipy.stats takes about half a second to
+    import, which a run can spend while its trajectories are simulated)."""
+    from scipy.stats import chi2
+
+    return chi2
 
 
 # --------------------------------------------------------------------------------------------
@@ -317,7 +325,7 @@ def welch_interval(
     nu = dof_per_segment * k
     a = 1.0 - level
     s = np.asarray(psd_mean, dtype=float)
-    return nu * s / stats.chi2.ppf(1 - a / 2, nu), nu * s / stats.chi2.ppf(a / 2, nu)
+    return nu * s / _chi2().ppf(1 - a / 2, nu), nu * s / _chi2().ppf(a / 2, nu)
 
 
 def segments_from_interval(
@@ -349,7 +357,7 @@ def segments_from_interval(
 
     def g(log_k: float) -> float:
         nu = 2.0 * math.exp(log_k)
-        return math.log(stats.chi2.ppf(1 - a / 2, nu) / stats.chi2.ppf(a / 2, nu)) - math.log(
+        return math.log(_chi2().ppf(1 - a / 2, nu) / _chi2().ppf(a / 2, nu)) - math.log(
             ratio
         )
 
@@ -729,7 +737,7 @@ def _p_value(chi2: float, dof: int, kurt: float) -> float:
     if dof < 1:
         return float("nan")
     c = (2.0 + kurt) / 2.0
-    return float(stats.chi2.sf(chi2 / c, 2.0 * dof / (2.0 + kurt)))
+    return float(_chi2().sf(chi2 / c, 2.0 * dof / (2.0 + kurt)))
 
 
 def _model_log(theta: np.ndarray, f: np.ndarray, t_seg: float | None) -> np.ndarray:

@@ -37,6 +37,7 @@ import itertools
 import json
 import logging
 import math
+import os
 import signal
 import tomllib
 from collections.abc import Callable
@@ -371,6 +372,13 @@ def _connect(scheduler: str | None, workers: int | None, n_tasks: int):
     # refusal) would follow the one line grmc prints: every failure of a point comes back
     # to this process as its exception, so the cluster's logs are kept quiet
     logging.getLogger("distributed").setLevel(logging.CRITICAL)
+    # workers stopped by Ctrl-C leave their semaphores to multiprocessing's resource tracker,
+    # which cleans them up and says so in a warning of its own after grmc's line: it is told
+    # (through the environment it inherits) that this is expected
+    quiet = "ignore:resource_tracker:UserWarning"
+    if quiet not in os.environ.get("PYTHONWARNINGS", ""):
+        os.environ["PYTHONWARNINGS"] = ",".join(
+            w for w in (os.environ.get("PYTHONWARNINGS"), quiet) if w)
     with _sigint_ignored():
         cluster = LocalCluster(n_workers=min(n, n_tasks), threads_per_worker=1,
                                dashboard_address=None, processes=True,

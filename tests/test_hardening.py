@@ -326,7 +326,10 @@ def test_sigterm_is_handled_like_ctrl_c(tmp_path, capsys):
 @pytest.mark.slow
 def test_interrupted_sweep_prints_one_line(tmp_path):
     """Ctrl-C reaches the whole process group (the workers too): one line, exit 130."""
-    path = _write(tmp_path, LONG.replace("count = 20", "count = 2000"))
+    # a population makes every point a Monte Carlo run of ~2.6e9 events, far longer than the
+    # 15 s before the interruption (the exact solver would finish a plain point in time)
+    path = _write(tmp_path, LONG.replace("count = 20", "count = 2000")
+                  + "[population]\nfrequencies_Hz = [1.0e5]\n")
     out = tmp_path / "sw.nc"
     proc = subprocess.Popen([sys.executable, "-m", "grmc", "sweep", str(path), "--vary",
                              "run.seed=1:4:4", "--workers", "2", "-o", str(out)],
