@@ -29,6 +29,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 from . import spectra
+from .spread import is_sublevel  # sub-levels are kept in files, left out of tables and figures
 
 if TYPE_CHECKING:  # pragma: no cover
     import xarray as xr
@@ -98,13 +99,6 @@ def read_dataset(path: str | os.PathLike[str]) -> xr.Dataset:
     except OutputError as exc:
         raise NotAGrmcFile(f"{path}: does not follow the grmc file contract ({exc})") from None
     return ds
-
-
-def is_sublevel(name: str) -> bool:
-    """True for a sub-level ``trapped:<label>#j`` of a trap level with a spread of time
-    constants: kept in the file, left out of tables and figures, which show the level's
-    total ``trapped:<label>``."""
-    return "#" in str(name)
 
 
 # --------------------------------------------------------------------------------------------
