@@ -927,30 +927,16 @@ def transient(
     stationary law (its ``mass_outside``), instead of growing with the stationary outflow of
     the absorbing truncation, which is an artefact of the sink.
     """
-    times = np.atleast_1d(np.asarray(times, dtype=np.float64))
-    if np.any(~np.isfinite(times)) or np.any(times < 0):
-        raise ValueError("times must be finite and >= 0 [s]")
-    if method not in ("auto", "sparse", "dense"):
-        raise ValueError(f"method must be 'auto', 'sparse' or 'dense', got {method!r}")
+    times = _checked_times(times, method)
     A = sp.csr_matrix(Q_absorbing).T.tocsr()
     n = A.shape[0]
     order = np.argsort(times, kind="stable")
     ts = times[order]
     steps = np.diff(np.concatenate([[0.0], ts]))
-    # Steps equal to 1e-12 relative (a uniform grid after rounding) share one propagator.
-    key = np.zeros(steps.size)
-    positive = steps > 0
-    key[positive] = np.exp(np.round(np.log(steps[positive]) * 1e12) / 1e12)
-    n_distinct = np.unique(key[positive]).size
+    key = _step_keys(steps)
     norm = float(abs(A).sum(axis=0).max()) if n else 0.0
-    # rough seconds of each path: a sparse product costs its Python call (~15 us) plus
-    # ~5 ns per stored entry; an expm costs ~(10 + log2 ||A dt||) dense products of 2 n^3
-    # flops at ~1 Gflop/s, then one matrix-vector product per time
-    sparse_cost = 1.5 * norm * float(steps.sum()) * (15e-6 + 5e-9 * A.nnz)
-    squarings = 10.0 + math.log2(max(norm * float(steps.max(initial=0.0)), 1.0))
-    dense_cost = n_distinct * squarings * 2e-9 * float(n) ** 3 + ts.size * 2e-9 * n * n
     dense = method == "dense" or (
-        method == "auto" and n <= _DENSE_MAX and sparse_cost > dense_cost)
+        method == "auto" and n <= _DENSE_MAX and _dense_is_cheaper(A, norm, steps, key))
     if not dense and stationary is None and 1.5 * norm * float(ts[-1]) > _MAX_PRODUCTS:
         raise ExactUnresolved(_transient_too_long(norm, float(ts[-1])))
     stepper = _DenseSteps(A) if dense else _TaylorSteps(A)
@@ -975,6 +961,42 @@ def transient(
                 raise ExactUnresolved(_transient_too_long(norm, float(ts[-1])))
         out[order[pos]] = p
     return out
+
+
+def _checked_times(times: np.ndarray, method: str) -> np.ndarray:
+    """The times of :func:`transient` as a float array, after checking them and the method."""
+    times = np.atleast_1d(np.asarray(times, dtype=np.float64))
+    if np.any(~np.isfinite(times)) or np.any(times < 0):
+        raise ValueError("times must be finite and >= 0 [s]")
+    if method not in ("auto", "sparse", "dense"):
+        raise ValueError(f"method must be 'auto', 'sparse' or 'dense', got {method!r}")
+    return times
+
+
+def _step_keys(steps: np.ndarray) -> np.ndarray:
+    """Keys of the step lengths: steps equal to 1e-12 relative (a uniform grid after
+    rounding) share one key and so one propagator; 0 for empty steps [s]."""
+    key = np.zeros(steps.size)
+    positive = steps > 0
+    key[positive] = np.exp(np.round(np.log(steps[positive]) * 1e12) / 1e12)
+    return key
+
+
+def _dense_is_cheaper(A: sp.csr_matrix, norm: float, steps: np.ndarray,
+                      key: np.ndarray) -> bool:
+    """Whether dense propagators are estimated cheaper than sparse Taylor steps.
+
+    Rough seconds of each path: a sparse product costs its Python call (~15 us) plus ~5 ns
+    per stored entry; an expm costs ~(10 + log2 ||A dt||) dense products of 2 n^3 flops at
+    ~1 Gflop/s, then one matrix-vector product per time (measured on the development
+    machine, common practice for such estimates).
+    """
+    n = A.shape[0]
+    n_distinct = np.unique(key[steps > 0]).size
+    sparse_cost = 1.5 * norm * float(steps.sum()) * (15e-6 + 5e-9 * A.nnz)
+    squarings = 10.0 + math.log2(max(norm * float(steps.max(initial=0.0)), 1.0))
+    dense_cost = n_distinct * squarings * 2e-9 * float(n) ** 3 + steps.size * 2e-9 * n * n
+    return sparse_cost > dense_cost
 
 
 def _transient_too_long(norm: float, t: float) -> str:
@@ -1645,6 +1667,13 @@ def solve(
             f"{worst:.3g} > tol = {tol:g}", TruncationWarning, stacklevel=2)
     if times is not None and lost is None:  # max_pairs fixed and the start outside: refuse
         raise ValueError(f"the start state {tra.start} is outside the truncation J = {tr.J}")
+    return _result(model, st, tr, tra, freqs, times)
+
+
+def _result(model: Model, st: _Stationary, tr: _Truncation, tra: _Transient,
+            freqs: np.ndarray | None, times: np.ndarray | None) -> ExactResult:
+    """Assemble the :class:`ExactResult` of a solved stationary law and transient."""
+    lost = tra.lost
     space = st.space
     mean, cov = _moments(space.states, st.pi)
     t_mean = t_var = t_out_var = None

@@ -32,22 +32,17 @@ from __future__ import annotations
 import math
 import os
 import re
-import tomllib
-from dataclasses import dataclass
 from pathlib import Path
-from typing import TYPE_CHECKING, Any, Literal
+from typing import Any, Literal
 
 import numpy as np
 
-from . import spectra
 from .atomic import write_text_atomic
 from .export_curve import (DEFAULT_BAND_HZ, ExportCurve, ExportOptionError, export_curve,
                            lna_theory)
 from .rational import RationalSpectrum, positive_fit
+from .result import Result, Spectrum, as_result
 from .spice import spice_name, subcircuit
-
-if TYPE_CHECKING:  # pragma: no cover
-    import xarray as xr
 
 __all__ = [
     "SpectrumTable",
@@ -76,162 +71,24 @@ _KEYWORDS = {
 # --------------------------------------------------------------------------------------------
 # What to export
 # --------------------------------------------------------------------------------------------
-@dataclass(frozen=True)
-class SpectrumTable:
-    """One spectrum taken out of an output Dataset.
-
-    Attributes
-    ----------
-    quantity : str  "current" or a species name
-    is_current : bool
-    units : str  "A^2/Hz" or "counts^2/Hz"
-    frequency : ndarray  [Hz]
-    psd, psd_low, psd_high : ndarray  One-sided estimate and its 95 % interval [units]
-    psd_lna : ndarray or None  Linear-noise spectrum [units]
-    n_segments : float or None  K, periodogram values averaged per frequency [1]
-    interval_note : str  How the interval was made
-    exact : bool  The file is a master-equation solution (``grmc exact``), not a Monte Carlo
-        estimate
-    title : str  Scenario title
-    bias_V : float or None  Readout bias [V]
-    current_mean_A : float or None  Mean readout current [A]
-    current_definition : str  What the readout current is (files written before this was
-        stored: the drift current of the bar)
-    """
-
-    quantity: str
-    is_current: bool
-    units: str
-    frequency: np.ndarray
-    psd: np.ndarray
-    psd_low: np.ndarray
-    psd_high: np.ndarray
-    psd_lna: np.ndarray | None
-    n_segments: float | None
-    interval_note: str
-    exact: bool
-    title: str
-    bias_V: float | None
-    current_mean_A: float | None
-    current_definition: str = ""
-
-
-def _open(ds: Any) -> xr.Dataset:
-    if isinstance(ds, (str, os.PathLike)):
-        import xarray as xr
-
-        with xr.open_dataset(ds) as opened:
-            return opened.load()
-    return ds
-
-
-def _species_names(ds: xr.Dataset) -> list[str]:
-    if "species" not in ds.coords and "species" not in ds.dims:
-        return []
-    return [str(s) for s in np.asarray(ds["species"].values)]
-
-
-_DRIFT = "drift current of the biased bar, I = q bias/L^2 (mu_n N_e + mu_p N_h)"
-
-
-def _bias(ds: xr.Dataset) -> float | None:
-    """Readout bias from the ``readout_bias_V`` attribute, else from the scenario text."""
-    if "readout_bias_V" in ds.attrs:
-        try:
-            return float(ds.attrs["readout_bias_V"])
-        except (TypeError, ValueError):
-            return None
-    text = ds.attrs.get("scenario_toml")
-    if not isinstance(text, str):
-        return None
-    try:
-        value = tomllib.loads(text).get("readout", {}).get("bias_V")
-    except tomllib.TOMLDecodeError:
-        return None
-    return float(value) if isinstance(value, (int, float)) else None
-
-
-def _one_d(da: xr.DataArray, what: str) -> np.ndarray:
-    extra = [d for d in da.dims if d != "frequency"]
-    if extra:
-        raise ValueError(
-            f"{what} has dimensions {tuple(da.dims)}: select one point first, "
-            f"e.g. ds.isel({extra[0]}=0)"
-        )
-    return np.asarray(da.values, dtype=float)
-
-
-def _segments(ds: xr.Dataset) -> float | None:
-    """K, the periodogram values averaged per frequency, where the file states it."""
-    n_seg: float | None = None
-    for holder in (ds.attrs, ds["psd"].attrs if "psd" in ds else {}):
-        for key in ("psd_segments", "n_segments", "segments_total"):
-            if key in holder:
-                n_seg = float(holder[key])
-    return n_seg
-
-
-def _current_arrays(ds: xr.Dataset, names: list[str]):
-    """psd, low, high, lna of the readout current."""
-    if "current_psd" not in ds:
-        raise ValueError(
-            "this file has no current_psd (the scenario has no [readout]); "
-            f"give a species instead: {', '.join(names)}"
-        )
-    psd = _one_d(ds["current_psd"], "current_psd")
-    if "current_psd_low" in ds and "current_psd_high" in ds:
-        low = _one_d(ds["current_psd_low"], "current_psd_low")
-        high = _one_d(ds["current_psd_high"], "current_psd_high")
-    elif "psd" in ds and "psd_low" in ds and "psd_high" in ds:
-        ref = ds["psd"].isel(species=0)
-        rel_lo = _one_d(ds["psd_low"].isel(species=0), "psd_low") / _one_d(ref, "psd")
-        rel_hi = _one_d(ds["psd_high"].isel(species=0), "psd_high") / _one_d(ref, "psd")
-        low, high = psd * rel_lo, psd * rel_hi
-    else:
-        low = high = np.full_like(psd, np.nan)
-    lna = _one_d(ds["current_psd_lna"], "current_psd_lna") if "current_psd_lna" in ds else None
-    return psd, low, high, lna
-
-
-def _species_arrays(ds: xr.Dataset, names: list[str], quantity: str):
-    """psd, low, high, lna of one species' count."""
-    if quantity not in names:
-        opts = ", ".join((["current"] if "current_psd" in ds else []) + names)
-        raise ValueError(f"unknown quantity {quantity!r}; this file has: {opts}")
-    sel = {"species": names.index(quantity)}
-    psd = _one_d(ds["psd"].isel(sel), "psd")
-    if "psd_low" in ds and "psd_high" in ds:
-        low = _one_d(ds["psd_low"].isel(sel), "psd_low")
-        high = _one_d(ds["psd_high"].isel(sel), "psd_high")
-    else:
-        low = high = np.full_like(psd, np.nan)
-    lna = _one_d(ds["psd_lna"].isel(sel), "psd_lna") if "psd_lna" in ds else None
-    return psd, low, high, lna
-
-
-def _interval_note(ds: xr.Dataset, low: np.ndarray, n_seg: float | None) -> str:
-    if "probability_outside" in ds:
-        return "none (an exact master-equation spectrum; psd_low, psd_high are nan)"
-    if np.all(~np.isfinite(low)):
-        return "none in the file (psd_low, psd_high are nan)"
-    k_txt = f"K = {n_seg:.6g}" if n_seg is not None else "K"
-    return ("psd_low .. psd_high is the 95 % chi-squared interval of an average of "
-            f"{k_txt} periodogram values "
-            "(nu = 2K degrees of freedom; Welch, IEEE Trans. Audio Electroacoust. 15, 70, 1967)")
+#: One spectrum of a file with its interval and theory line (the result layer's
+#: :class:`grmc.result.Spectrum`).
+SpectrumTable = Spectrum
 
 
 def spectrum_table(ds: Any, quantity: str | None = None) -> SpectrumTable:
-    """Take one spectrum with its interval out of an output Dataset.
+    """Take one spectrum with its interval out of an output file.
 
     Parameters
     ----------
-    ds : xarray.Dataset or path  Output file contents (docs/file-format.md)
+    ds : xarray.Dataset, Result or path  Output file contents (docs/file-format.md)
     quantity : str, optional  "current" (needs ``current_psd``) or a species name; default
         "current" where the file has ``current_psd``, else "electrons"
 
     Returns
     -------
-    SpectrumTable
+    SpectrumTable  The spectrum read by :meth:`grmc.result.Result.spectrum`, with the
+        nominal linear-noise line (the one the scenario text recomputes beyond the band)
 
     Raises
     ------
@@ -245,34 +102,7 @@ def spectrum_table(ds: Any, quantity: str | None = None) -> SpectrumTable:
     file is an average of the same K periodogram values, so the relative 95 % interval
     nu / chi2.ppf(., nu), nu = 2K, is the same for all of them (Welch 1967).
     """
-    ds = _open(ds)
-    names = _species_names(ds)
-    if quantity is None:
-        quantity = "current" if "current_psd" in ds else "electrons"
-    freq = _one_d(ds["frequency"], "frequency")
-    n_seg = _segments(ds)
-    current_mean = None
-    if "current_mean" in ds and ds["current_mean"].ndim == 0:
-        current_mean = float(ds["current_mean"].values)
-    is_current = quantity == "current"
-    if is_current:
-        psd, low, high, lna = _current_arrays(ds, names)
-    else:
-        psd, low, high, lna = _species_arrays(ds, names, quantity)
-    if n_seg is None and np.any(np.isfinite(low)):
-        try:
-            n_seg = spectra.segments_from_interval(psd, low, high)
-        except ValueError:
-            n_seg = None
-    return SpectrumTable(
-        quantity=quantity, is_current=is_current,
-        units="A^2/Hz" if is_current else "counts^2/Hz", frequency=freq, psd=psd,
-        psd_low=low, psd_high=high, psd_lna=lna, n_segments=n_seg,
-        interval_note=_interval_note(ds, low, n_seg), exact="probability_outside" in ds,
-        title=str(ds.attrs.get("title", "untitled scenario")), bias_V=_bias(ds),
-        current_mean_A=current_mean,
-        current_definition=str(ds.attrs.get("readout_current", _DRIFT)),
-    )
+    return as_result(ds).spectrum(quantity, pixel_lna=False)
 
 
 # --------------------------------------------------------------------------------------------
@@ -287,41 +117,39 @@ def _fmt(x: float) -> str:
     return NUMBER_FORMAT % x
 
 
-def _header_lines(tab: SpectrumTable) -> list[str]:
-    what = tab.current_definition if tab.is_current else f"number of {tab.quantity} in the volume"
+def _header_lines(res: Result, tab: SpectrumTable) -> list[str]:
+    what = res.current_definition if tab.is_current else f"number of {tab.quantity} in the volume"
     lines = [
         "grmc noise spectrum",
-        f"scenario: {tab.title}",
+        f"scenario: {res.title or 'untitled scenario'}",
         f"quantity: {tab.quantity} -- {what}",
         f"units: frequency in Hz; spectral densities in {tab.units}",
         "one-sided power spectral density: its integral over f > 0 is the variance",
     ]
-    if tab.bias_V is not None:
-        lines.append(f"readout bias: {tab.bias_V:g} V")
-    if tab.is_current and tab.current_mean_A is not None:
-        lines.append(f"mean current: {tab.current_mean_A:.6e} A")
+    if res.bias_V is not None:
+        lines.append(f"readout bias: {res.bias_V:g} V")
+    if tab.is_current and res.current_mean_A is not None:
+        lines.append(f"mean current: {res.current_mean_A:.6e} A")
     return lines
 
 
-def _band_noise_lines(ds: Any, tab: SpectrumTable) -> list[str]:
+def _band_noise_lines(res: Result, tab: SpectrumTable) -> list[str]:
     """The file's rms noise current over the readout band, where it has one."""
-    if not tab.is_current or "current_noise_rms" not in ds:
+    bn = res.band_noise() if tab.is_current else None
+    if bn is None:
         return []
-    band = ds["current_noise_rms"].attrs.get("band_Hz")
-    where = (f"{float(band[0]):g} .. {float(band[1]):g} Hz" if band is not None
+    where = (f"{bn.band[0]:g} .. {bn.band[1]:g} Hz" if bn.band is not None
              else "the readout band")
     text = f"rms noise current over the readout band {where}: "
-    rms = float(ds["current_noise_rms"])
-    text += f"{rms:.6e} A" if math.isfinite(rms) else "not resolved by the run"
-    if "current_noise_rms_low" in ds and math.isfinite(rms):
-        text += (f" (95 % interval {float(ds['current_noise_rms_low']):.4e} .. "
-                 f"{float(ds['current_noise_rms_high']):.4e} A)")
-    if "current_noise_rms_lna" in ds:
-        text += f"; linear noise {float(ds['current_noise_rms_lna']):.6e} A"
+    text += f"{bn.rms:.6e} A" if math.isfinite(bn.rms) else "not resolved by the run"
+    if bn.low is not None and math.isfinite(bn.rms):
+        text += f" (95 % interval {bn.low:.4e} .. {bn.high:.4e} A)"
+    if bn.lna is not None:
+        text += f"; linear noise {bn.lna:.6e} A"
     return [text]
 
 
-def _curve_lines(ds: Any, tab: SpectrumTable, cur: ExportCurve) -> list[str]:
+def _curve_lines(res: Result, tab: SpectrumTable, cur: ExportCurve) -> list[str]:
     """Header lines every circuit export shares: source, band, deviation, band noise."""
     lines = [
         f"source: {cur.source} -- {cur.how}",
@@ -329,21 +157,21 @@ def _curve_lines(ds: Any, tab: SpectrumTable, cur: ExportCurve) -> list[str]:
         f".. {cur.simulated[1]:.6g} Hz",
         cur.deviation_text(),
     ]
-    return lines + _band_noise_lines(ds, tab)
+    return lines + _band_noise_lines(res, tab)
 
 
 def _prepare(ds: Any, quantity: str | None, source: str | None, band: tuple[float, float],
-             current_for: str = "") -> tuple[Any, SpectrumTable, ExportCurve]:
-    """The file, its spectrum and the exported curve; ``current_for`` names a format that
-    needs a current (refused for a count first)."""
-    ds = _open(ds)
-    tab = spectrum_table(ds, quantity)
+             current_for: str = "") -> tuple[Result, SpectrumTable, ExportCurve]:
+    """The file read once, its spectrum and the exported curve; ``current_for`` names a
+    format that needs a current (refused for a count first)."""
+    res = as_result(ds)
+    tab = res.spectrum(quantity, pixel_lna=False)
     if current_for and not tab.is_current:
         raise ExportOptionError(
             "--quantity", f"{tab.quantity!r} is a count spectrum [counts^2/Hz], not a current: "
             f"a {current_for} noise source needs A^2/Hz (add a [readout] to the scenario), or "
             "export the counts as CSV")
-    return ds, tab, export_curve(ds, tab, source=source, band=band)
+    return res, tab, export_curve(res, tab, source=source, band=band)
 
 
 def _csv_rows(tab: SpectrumTable, cur: ExportCurve, points_per_decade: int):
@@ -367,7 +195,7 @@ def export_csv(ds: Any, path: str | os.PathLike[str], *, quantity: str | None = 
 
     Parameters
     ----------
-    ds : xarray.Dataset or path  Output file contents
+    ds : xarray.Dataset, Result or path  Output file contents
     path : path  CSV file to write
     quantity : str, optional  "current" or a species name (see :func:`spectrum_table`)
     source : "fit" | "lna" | "mc", optional  The curve in ``psd_export`` (see
@@ -389,7 +217,7 @@ def export_csv(ds: Any, path: str | os.PathLike[str], *, quantity: str | None = 
     the source, the band, the largest deviation from the Monte Carlo estimate, the rms noise
     in the readout band).  Readable with ``pandas.read_csv(path, comment="#")``.
     """
-    ds, tab, cur = _prepare(ds, quantity, source, band)
+    res, tab, cur = _prepare(ds, quantity, source, band)
     path = Path(path)
     f, simulated = _csv_rows(tab, cur, points_per_decade)
     idx = np.clip(np.searchsorted(tab.frequency, f), 0, tab.frequency.size - 1)
@@ -398,14 +226,15 @@ def export_csv(ds: Any, path: str | os.PathLike[str], *, quantity: str | None = 
             "psd": np.where(simulated, tab.psd[idx], nan),
             "psd_low": np.where(simulated, tab.psd_low[idx], nan),
             "psd_high": np.where(simulated, tab.psd_high[idx], nan)}
-    theory = lna_theory(ds, tab.quantity)
+    theory = lna_theory(res, tab.quantity)
     if tab.psd_lna is not None or theory is not None:
         lna = np.where(simulated, tab.psd_lna[idx], nan) if tab.psd_lna is not None else nan
         if theory is not None and np.any(~simulated):
             lna = np.where(simulated, lna, theory[0](np.where(simulated, cur.band[0], f)))
         cols["psd_lna"] = lna
     cols["psd_export"] = cur(f)
-    head = _header_lines(tab) + [f"interval: {tab.interval_note}"] + _curve_lines(ds, tab, cur)
+    head = (_header_lines(res, tab) + [f"interval: {tab.interval_note}"]
+            + _curve_lines(res, tab, cur))
     if "psd_lna" in cols:
         head.append("psd_lna: linear-noise approximation (van Kampen's system-size expansion)")
     head.append("psd: exact spectrum of the master equation (finite state projection)"
@@ -541,7 +370,7 @@ def export_verilog_a(
 
     Parameters
     ----------
-    ds : xarray.Dataset or path  Output file contents (needs ``current_psd``)
+    ds : xarray.Dataset, Result or path  Output file contents (needs ``current_psd``)
     path : path  The ``.va`` file; the table goes to ``<stem>.tbl`` next to it
     quantity : str, optional  Must be "current" (the default where the file has it)
     interpolation : "linear" | "log"  ``noise_table`` (LRM 2.4 section 4.6.4.3: linear in
@@ -581,7 +410,7 @@ def export_verilog_a(
     if va_path.suffix == ".tbl":
         raise ValueError("give the .va file name; the .tbl is written next to it")
     name = _module_name(module_name, va_path.stem)
-    ds, tab, cur = _prepare(ds, quantity, source, band, current_for="Verilog-A")
+    res, tab, cur = _prepare(ds, quantity, source, band, current_for="Verilog-A")
     tbl_path = va_path.with_suffix(".tbl")
     f = _log_grid(cur.band[0], cur.band[1], points_per_decade)
     s = cur(f)
@@ -589,7 +418,7 @@ def export_verilog_a(
             and np.all(s >= 0)):
         raise ValueError("internal: the table is not ascending, unique, finite and >= 0")
     func = "noise_table" if interpolation == "linear" else "noise_table_log"
-    head = _header_lines(tab) + _curve_lines(ds, tab, cur) + [
+    head = _header_lines(res, tab) + _curve_lines(res, tab, cur) + [
         f"table: {f.size} (frequency [Hz], PSD [A^2/Hz]) pairs, {f[0]:.6g} .. {f[-1]:.6g} Hz",
         f"interpolation in the simulator: {func} (Accellera Verilog-AMS LRM 2.4, section "
         + ("4.6.4.3, linear)" if func == "noise_table" else "4.6.4.4, log-log)"),
@@ -629,7 +458,7 @@ def export_spice(
 
     Parameters
     ----------
-    ds : xarray.Dataset or path  Output file contents (needs ``current_psd``)
+    ds : xarray.Dataset, Result or path  Output file contents (needs ``current_psd``)
     path : path  Netlist file to write (e.g. ``pixel_noise.cir``; ``.include`` it)
     quantity : str, optional  Must be "current"
     source : "fit" | "lna" | "mc", optional  As for :func:`export_verilog_a`; ``mc`` is
@@ -653,9 +482,9 @@ def export_spice(
     """
     path = Path(path)
     name = spice_name(name if name is not None else path.stem)
-    ds, tab, cur = _prepare(ds, quantity, source, band, current_for="SPICE")
+    res, tab, cur = _prepare(ds, quantity, source, band, current_for="SPICE")
     spec, note = _rational_for_spice(cur)
-    head = _header_lines(tab) + _curve_lines(ds, tab, cur) + [
+    head = _header_lines(res, tab) + _curve_lines(res, tab, cur) + [
         f"circuit spectrum: {spec.describe()} [A^2/Hz]",
         f"circuit spectrum against the curve: {note}",
         "use: X1 node_p node_n " + name + " (a noise current between two nodes; a .noise "

@@ -23,6 +23,8 @@ DEFAULT_BAND_HZ, MAX_FREQUENCY_HZ, SOURCES
 ExportOptionError(option, message)
 parse_band(text) -> (f1, f2)
 export_curve(ds, tab, *, source=None, band=DEFAULT_BAND_HZ) -> ExportCurve
+
+The file is read through :mod:`grmc.result` (its spectrum, stored fit and scenario text).
 """
 
 from __future__ import annotations
@@ -34,6 +36,7 @@ from typing import Any, Callable
 import numpy as np
 
 from .rational import RationalSpectrum, lna_rational
+from .result import Result, as_result
 
 __all__ = ["DEFAULT_BAND_HZ", "MAX_FREQUENCY_HZ", "SOURCES", "ExportOptionError",
            "ExportCurve", "parse_band", "export_curve"]
@@ -151,47 +154,36 @@ def check_band(band: tuple[float, float]) -> tuple[float, float]:
 # --------------------------------------------------------------------------------------------
 # The three sources
 # --------------------------------------------------------------------------------------------
-def stored_fit(ds: Any, quantity: str, species: list[str]) -> tuple[RationalSpectrum, str] | None:
-    """The file's Lorentzian fit of ``quantity`` where it passed its checks, else None."""
-    if quantity == "current":
-        names = ("current_spectrum_kind", "current_plateau", "current_corner_frequency")
-        if not all(n in ds for n in names):
-            return None
-        kind = str(ds[names[0]].values)
-        s0, fc = np.asarray(ds[names[1]].values, float), np.asarray(ds[names[2]].values, float)
-        white = float(ds["current_shot_noise"].values) if "current_shot_noise" in ds else 0.0
-    else:
-        names = ("spectrum_kind", "plateau", "corner_frequency")
-        if not all(n in ds for n in names) or quantity not in species:
-            return None
-        i = species.index(quantity)
-        kind = str(ds[names[0]].values[i])
-        s0 = np.asarray(ds[names[1]].values[i], float)
-        fc = np.asarray(ds[names[2]].values[i], float)
-        white = 0.0
-    if kind not in ("one", "two"):
+def stored_fit(res: Any, quantity: str) -> tuple[RationalSpectrum, str] | None:
+    """The file's Lorentzian fit of ``quantity`` where it passed its checks, else None.
+
+    ``res`` is a :class:`grmc.result.Result` (or a Dataset, read into one)."""
+    fit = as_result(res).fit(quantity)
+    if fit is None or fit.kind not in ("one", "two"):
         return None
+    s0, fc = fit.plateaus, fit.corners
     ok = np.isfinite(s0) & np.isfinite(fc)
     if not np.any(ok) or np.any(s0[ok] <= 0) or np.any(fc[ok] <= 0):
         return None
-    spec = RationalSpectrum(white, fc[ok], s0[ok])
+    spec = RationalSpectrum(fit.white, fc[ok], s0[ok])
     parts = [f"{a:.4g} / (1 + (f / {f:.4g} Hz)^2)"
              for f, a in zip(spec.corners, spec.amplitudes)]
-    how = (f"the stored fit of {'one Lorentzian' if kind == 'one' else 'two Lorentzians'} "
+    how = (f"the stored fit of {'one Lorentzian' if fit.kind == 'one' else 'two Lorentzians'} "
            "(weighted least squares on the log periodogram, passed its checks): "
            + " + ".join(parts))
-    if white > 0:
-        how += f" above the white shot level {white:.4g} (current_shot_noise)"
+    if fit.white > 0:
+        how += f" above the white shot level {fit.white:.4g} (current_shot_noise)"
     return spec, how
 
 
-def lna_theory(ds: Any, quantity: str
+def lna_theory(res: Any, quantity: str
                ) -> tuple[Callable[[np.ndarray], np.ndarray], RationalSpectrum | None, str] | None:
     """The linear-noise spectrum recomputed from the file's scenario text, or None.
 
-    Returns (curve, rational form or None, description)."""
-    text = ds.attrs.get("scenario_toml")
-    if not isinstance(text, str):
+    ``res`` is a :class:`grmc.result.Result` (or a Dataset, read into one).  Returns (curve,
+    rational form or None, description)."""
+    text = as_result(res).scenario_text
+    if text is None:
         return None
     from .continuum import ContinuumError, lna_psd
     from .model import build_model
@@ -251,13 +243,13 @@ def _loglog(f_ref: np.ndarray, s_ref: np.ndarray) -> Callable[[np.ndarray], np.n
     return lambda f: np.exp(np.interp(np.log(np.asarray(f, float)), lf, ls))
 
 
-def _choose(ds: Any, tab, source: str | None, species: list[str]):
+def _choose(res: Result, tab, source: str | None):
     """(source, fit, theory) with the default rule, or refuse the requested source."""
-    fit = stored_fit(ds, tab.quantity, species)
+    fit = stored_fit(res, tab.quantity)
     # the theory is recomputed only where it is used: the source, the default without a fit,
     # or the tails of the estimate without a fit
     theory = None if (fit is not None and source in (None, "fit", "mc")) else lna_theory(
-        ds, tab.quantity)
+        res, tab.quantity)
     if source is None:
         source = "fit" if fit is not None else ("lna" if theory is not None else "mc")
     if source not in SOURCES:
@@ -279,8 +271,9 @@ def export_curve(ds: Any, tab, *, source: str | None = None,
 
     Parameters
     ----------
-    ds : xarray.Dataset  Output file contents
-    tab : grmc.export.SpectrumTable  The quantity's spectrum taken out of ``ds``
+    ds : grmc.result.Result or xarray.Dataset  Output file contents
+    tab : grmc.result.Spectrum  The quantity's spectrum taken out of ``ds``
+        (:func:`grmc.export.spectrum_table`)
     source : "fit" | "lna" | "mc" or None  None: fit where it passed, else lna, else mc
     band : (f1, f2)  [Hz]
 
@@ -296,8 +289,7 @@ def export_curve(ds: Any, tab, *, source: str | None = None,
         tails).
     """
     band = check_band(band)
-    species = [str(s) for s in np.asarray(ds["species"].values)] if "species" in ds else []
-    source, fit, theory = _choose(ds, tab, source, species)
+    source, fit, theory = _choose(as_result(ds), tab, source)
     ref = _smoothed(tab)
     sim = (float(ref[0][0]), float(ref[0][-1]))
     name = "exact spectrum" if tab.exact else "Monte Carlo estimate"

@@ -12,6 +12,9 @@ open_result(path) -> Result
 from_dataset(ds) -> Result
 Result.spectrum(quantity) -> Spectrum
 Result.flicker(quantity) -> PowerLaw or None
+Result.fit(quantity) -> StoredFit or None
+Result.band_noise() -> BandNoise or None
+as_result(ds_or_path) -> Result
 """
 
 from __future__ import annotations
@@ -26,12 +29,15 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 from . import spectra
+from .spread import is_sublevel  # sub-levels are kept in files, left out of tables and figures
 
 if TYPE_CHECKING:  # pragma: no cover
     import xarray as xr
 
-__all__ = ["NotAGrmcFile", "Spectrum", "PowerLaw", "Result", "is_sublevel", "read_dataset",
-           "open_result", "from_dataset", "METHOD_MC", "METHOD_EXACT", "METHOD_SWEEP", "DEVIATION_THRESHOLD", "crossing_count"]
+__all__ = ["NotAGrmcFile", "Spectrum", "PowerLaw", "StoredFit", "BandNoise", "Result",
+           "is_sublevel", "read_dataset", "open_result", "from_dataset", "as_result",
+           "METHOD_MC", "METHOD_EXACT", "METHOD_SWEEP", "DEVIATION_THRESHOLD",
+           "crossing_count"]
 
 METHOD_MC, METHOD_EXACT, METHOD_SWEEP = "monte carlo", "exact", "sweep"
 #: A relative deviation of this size marks where the continuum answer fails (sweep files).
@@ -95,13 +101,6 @@ def read_dataset(path: str | os.PathLike[str]) -> xr.Dataset:
     return ds
 
 
-def is_sublevel(name: str) -> bool:
-    """True for a sub-level ``trapped:<label>#j`` of a trap level with a spread of time
-    constants: kept in the file, left out of tables and figures, which show the level's
-    total ``trapped:<label>``."""
-    return "#" in str(name)
-
-
 # --------------------------------------------------------------------------------------------
 @dataclass(frozen=True)
 class PowerLaw:
@@ -130,6 +129,46 @@ class PowerLaw:
     def ok(self) -> bool:
         """True where a line was fitted."""
         return math.isfinite(self.K) and math.isfinite(self.alpha)
+
+
+@dataclass(frozen=True)
+class StoredFit:
+    """The Lorentzian fit of one quantity's spectrum, as stored in a run file.
+
+    Attributes
+    ----------
+    quantity : str  "current" or a species name
+    kind : str  "one", "two" or "unresolved" (the fit's verdict)
+    plateaus : ndarray  Low-frequency plateau S0 of each component [units]
+    corners : ndarray  Corner frequency f_c of each component [Hz]
+    white : float  White level the fit was made above (the current's shot noise; 0 for a
+        count) [units]
+    """
+
+    quantity: str
+    kind: str
+    plateaus: np.ndarray
+    corners: np.ndarray
+    white: float
+
+
+@dataclass(frozen=True)
+class BandNoise:
+    """The rms noise current over the readout band, as stored in a run file.
+
+    Attributes
+    ----------
+    rms : float  Estimate (nan where the run did not resolve it) [A]
+    low, high : float or None  Its 95 % interval, where stored [A]
+    lna : float or None  Linear-noise value, where stored [A]
+    band : (float, float) or None  The band [Hz]
+    """
+
+    rms: float
+    low: float | None
+    high: float | None
+    lna: float | None
+    band: tuple[float, float] | None
 
 
 @dataclass(frozen=True)
@@ -278,15 +317,55 @@ class Result:
                         get("flicker_exponent"), get("flicker_exponent_stderr"),
                         get("flicker_corner_frequency"), band, units)
 
-    def spectrum(self, quantity: str | None = None) -> Spectrum:
+    @property
+    def scenario_text(self) -> str | None:
+        """The scenario TOML stored in the file, None where there is none."""
+        text = self.ds.attrs.get("scenario_toml")
+        return text if isinstance(text, str) else None
+
+    def fit(self, quantity: str) -> StoredFit | None:
+        """The stored Lorentzian fit of ``quantity`` ("current" or a species), None where the
+        file has none."""
+        pre = "current_" if quantity == "current" else ""
+        names = (pre + "spectrum_kind", pre + "plateau", pre + "corner_frequency")
+        if not all(n in self.ds for n in names):
+            return None
+        if quantity == "current":
+            kind = str(self.ds[names[0]].values)
+            white = self.scalar("current_shot_noise") or 0.0
+            sel: dict[str, int] = {}
+        elif quantity in self.species:
+            sel = {"species": self.species.index(quantity)}
+            kind, white = str(self.ds[names[0]].isel(sel).values), 0.0
+        else:
+            return None
+        return StoredFit(quantity, kind,
+                         np.asarray(self.ds[names[1]].isel(sel).values, dtype=float),
+                         np.asarray(self.ds[names[2]].isel(sel).values, dtype=float), white)
+
+    def band_noise(self) -> BandNoise | None:
+        """The stored rms noise current over the readout band, None where the file has none."""
+        rms = self.scalar("current_noise_rms")
+        if rms is None:
+            return None
+        band = self.ds["current_noise_rms"].attrs.get("band_Hz")
+        return BandNoise(rms, self.scalar("current_noise_rms_low"),
+                         self.scalar("current_noise_rms_high"),
+                         self.scalar("current_noise_rms_lna"),
+                         None if band is None else (float(band[0]), float(band[1])))
+
+    def spectrum(self, quantity: str | None = None, *, pixel_lna: bool = True) -> Spectrum:
         """The spectrum of ``quantity`` ("current" or a species; default the current where
         present, else electrons).
+
+        ``pixel_lna`` (default) takes, for a pixel population, the average of the pixels' own
+        linear-noise spectra as the theory line; False takes the nominal pixel's.
 
         Raises
         ------
         ValueError  An unknown quantity, or a sweep file (take a :meth:`point` first).
         """
-        return _spectrum(self, quantity)
+        return _spectrum(self, quantity, pixel_lna)
 
 
 # --------------------------------------------------------------------------------------------
@@ -335,8 +414,13 @@ def from_dataset(ds: xr.Dataset, *, method: str | None = None, note: str = "") -
     current = None
     if "current_mean" in ds and ds["current_mean"].ndim == 0:
         current = float(ds["current_mean"].values)
+    if method is None:
+        method = _method(ds)
+        if method == METHOD_SWEEP and "sweep" not in ds.dims:  # one point taken out
+            method = METHOD_EXACT if "method" in ds and str(ds["method"].values) == "exact" \
+                else METHOD_MC
     return Result(
-        ds=ds, method=method or _method(ds), title=str(ds.attrs.get("title", "")).strip(),
+        ds=ds, method=method, title=str(ds.attrs.get("title", "")).strip(),
         species=species, n_segments=_segments(ds),
         trajectories=_optional_int(ds.attrs.get("trajectories")),
         seed=_optional_int(ds.attrs.get("seed")), bias_V=_bias(ds), current_mean_A=current,
@@ -348,6 +432,15 @@ def from_dataset(ds: xr.Dataset, *, method: str | None = None, note: str = "") -
 def open_result(path: str | os.PathLike[str]) -> Result:
     """Read an output file (:func:`read_dataset`) into a :class:`Result`."""
     return from_dataset(read_dataset(path))
+
+
+def as_result(obj: Any) -> Result:
+    """A :class:`Result` from a Result, a Dataset in memory or the path of an output file."""
+    if isinstance(obj, Result):
+        return obj
+    if isinstance(obj, (str, os.PathLike)):
+        return open_result(obj)
+    return from_dataset(obj)
 
 
 # --------------------------------------------------------------------------------------------
@@ -391,14 +484,26 @@ def _current_interval(res: Result, psd: np.ndarray) -> tuple[np.ndarray, np.ndar
     return np.full_like(psd, np.nan), np.full_like(psd, np.nan)
 
 
-def _spectrum(res: Result, quantity: str | None) -> Spectrum:
+def _check_one_point(res: Result, name: str) -> None:
+    """Refuse a spectrum variable with more dimensions than (species, frequency)."""
     if res.method == METHOD_SWEEP or "sweep" in res.ds.dims:
-        raise ValueError("a sweep file holds one spectrum per point: take result.point(i)")
+        raise ValueError("a sweep file holds one spectrum per point: take result.point(i) "
+                         "(or select one point first, e.g. ds.isel(sweep=0))")
+    extra = [d for d in res.ds[name].dims if d not in ("species", "frequency")]
+    if extra:
+        raise ValueError(f"{name} has dimensions {tuple(res.ds[name].dims)}: select one "
+                         f"point first, e.g. ds.isel({extra[0]}=0)")
+
+
+def _spectrum(res: Result, quantity: str | None, pixel_lna: bool = True) -> Spectrum:
+    if res.method == METHOD_SWEEP or "sweep" in res.ds.dims:
+        _check_one_point(res, "frequency")
     quantity = quantity or ("current" if res.has_current else "electrons")
     if quantity == "current":
         if not res.has_current:
             raise ValueError("this file has no current_psd (the scenario has no [readout]); "
                              f"give a species instead: {', '.join(res.species)}")
+        _check_one_point(res, "current_psd")
         psd = res.values("current_psd")
         low, high = _current_interval(res, psd)
         lna_name, units, is_current = "current_psd_lna", "A^2/Hz", True
@@ -406,13 +511,14 @@ def _spectrum(res: Result, quantity: str | None) -> Spectrum:
         if quantity not in res.species or "psd" not in res.ds:
             opts = ", ".join((["current"] if res.has_current else []) + list(res.species))
             raise ValueError(f"unknown quantity {quantity!r}; this file has: {opts}")
+        _check_one_point(res, "psd")
         psd = res.values("psd", quantity)
         low = _row(res, "psd_low", quantity)
         high = _row(res, "psd_high", quantity)
         if low is None or high is None:
             low = high = np.full_like(psd, np.nan)
         lna_name, units, is_current = "psd_lna", "counts^2/Hz", False
-    pixels = res.has(lna_name + "_pixels")
+    pixels = pixel_lna and res.has(lna_name + "_pixels")
     lna = _row(res, lna_name + ("_pixels" if pixels else ""), None if is_current else quantity)
     lna_label = "linear noise, average of the pixels' own" if pixels else "linear noise"
     n_seg = res.n_segments

@@ -1032,6 +1032,19 @@ def _analysis(kind: Any, comps: Any, fit: _Fit | None, band: tuple[float, float]
                             n_segments=k, message=msg)
 
 
+def _segment_duration_of(freqs: np.ndarray,
+                         segment_duration: float | None | Literal["auto"]) -> float | None:
+    """T_seg of :func:`analyse_spectrum`: the number given, or 1/df of a Fourier grid for
+    "auto" (:func:`_fourier_segment_duration`) [s]."""
+    if isinstance(segment_duration, str):
+        if segment_duration != "auto":
+            raise ValueError(
+                f"segment_duration must be a number, None or 'auto', got {segment_duration!r}"
+            )
+        return _fourier_segment_duration(np.asarray(freqs, dtype=float))
+    return segment_duration
+
+
 def analyse_spectrum(
     freqs: np.ndarray,
     psd: np.ndarray,
@@ -1079,14 +1092,7 @@ def analyse_spectrum(
     """
     f, s, k, keep = _prepare(freqs, psd, low, high, n_segments, band, level,
                              drive_line_mask(freqs, drive_Hz))
-    if isinstance(segment_duration, str):
-        if segment_duration != "auto":
-            raise ValueError(
-                f"segment_duration must be a number, None or 'auto', got {segment_duration!r}"
-            )
-        t_seg = _fourier_segment_duration(np.asarray(freqs, dtype=float))
-    else:
-        t_seg = segment_duration
+    t_seg = _segment_duration_of(freqs, segment_duration)
     bat = _batches_kept(batches, keep)
     nan = float("nan")
     band_used = (float(f[0]), float(f[-1])) if f.size else (nan, nan)
@@ -1128,13 +1134,16 @@ def analyse_spectrum(
             f"{comps[0].f_c:.4g} +/- {comps[0].f_c_err:.2g} Hz and "
             f"{comps[1].f_c:.4g} +/- {comps[1].f_c_err:.2g} Hz" + note,
         )
+    return result("unresolved", (), one, _two_untrusted(one_txt, comps))
+
+
+def _two_untrusted(one_txt: str, comps: tuple[LorentzianFit, ...]) -> str:
+    """Message of :func:`analyse_spectrum` when one Lorentzian is rejected and the two
+    components of the second fit are not trustworthy."""
     why = "; ".join(
         f"component {i}: {c.message}" for i, c in enumerate(comps, start=1) if c.message
     )
-    return result(
-        "unresolved", (), one,
-        f"one Lorentzian is rejected ({one_txt}) and two are not trustworthy ({why})",
-    )
+    return f"one Lorentzian is rejected ({one_txt}) and two are not trustworthy ({why})"
 
 
 def drive_quadratures(bins: np.ndarray, dt_fine: float, frequency_Hz: float) -> np.ndarray:

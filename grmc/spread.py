@@ -14,9 +14,9 @@ of the continuous record).
 
 from __future__ import annotations
 
-from dataclasses import dataclass
-
 import numpy as np
+
+from .engine.tables import Outputs
 
 __all__ = ["ProjectedTrajectory", "project_trajectory", "lift", "is_sublevel", "not_analysed",
            "trap_time_constant",
@@ -28,28 +28,9 @@ __all__ = ["ProjectedTrajectory", "project_trajectory", "lift", "is_sublevel", "
 INNER_TRIM_DECADES = 1.0
 
 
-@dataclass(frozen=True)
-class ProjectedTrajectory:
-    """A trajectory's records on the output species (the fields the run's reductions read).
-
-    Attributes
-    ----------
-    samples : ndarray (n_samples, outputs)  Counts at the sample times [count]
-    bins : ndarray (n_fine, outputs)  Time averages over the fine bins [count]
-    integ, integ2 : ndarray (outputs,)  Integrals of x and x^2 over the window [count s],
-        [count^2 s]
-    events : ndarray (channels,)  Events of each channel [count]
-    final : ndarray (species,)  Final state, on the MODEL's species [count]
-    flows : ndarray  Collection events per fine bin, as recorded [count]
-    """
-
-    samples: np.ndarray
-    bins: np.ndarray
-    integ: np.ndarray
-    integ2: np.ndarray
-    events: np.ndarray
-    final: np.ndarray
-    flows: np.ndarray
+#: A trajectory's records on the output species (the fields the run's reductions read): the
+#: engine's record of one trajectory (:class:`grmc.engine.tables.Outputs`), on other species.
+ProjectedTrajectory = Outputs
 
 
 def project_trajectory(res, model, duration_s: float):

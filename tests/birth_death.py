@@ -26,3 +26,23 @@ generation_cm3_s = 1.0e20
 {light}
 {more}
 """
+
+
+#: A linear birth-death volume fed by light and drained by a reservoir: constant generation
+#: G V, exchange with the reservoir and loss N_e / t_x, no recombination (every law linear,
+#: so the linear-noise answers are exact; van Kampen 2007, ch. X).
+RESERVOIR_BOX = """
+title = "linear birth-death"
+[material]
+temperature_K = 300.0
+intrinsic_density_cm3 = 1.0e10
+acceptors_cm3 = 1.0e17
+[volume]
+volume_cm3 = 1.0e-15
+[light]
+generation_cm3_s = 1.0e20
+[reservoir]
+carrier = "electrons"
+density_cm3 = 1.0e15
+exchange_time_s = 1.0e-7
+"""

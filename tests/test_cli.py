@@ -10,34 +10,12 @@ from pathlib import Path
 import numpy as np
 import pytest
 
+from cli_boxes import BOX, SMALL, write_scenario
+
 from grmc.cli import main
 
-GOOD = """
-title = "cli box"
-[material]
-temperature_K = 300.0
-intrinsic_density_cm3 = 1.0e10
-radiative_cm3_s = 1.0e-10
-acceptors_cm3 = 1.0e17
-[volume]
-volume_cm3 = 1.0e-15
-[[traps]]
-label = "deep"
-count = 20
-energy_eV = 0.1
-electron_capture_cm3_s = 1.0e-8
-hole_capture_cm3_s = 1.0e-8
-[run]
-trajectories = 4
-duration_s = 1.0e-7
-samples = 64
-"""
-
-
-def _write(tmp_path: Path, text: str, name: str = "s.toml") -> Path:
-    path = tmp_path / name
-    path.write_text(text)
-    return path
+GOOD = BOX.format(title="cli box")
+_write = write_scenario
 
 
 BAD_CASES = [
@@ -108,28 +86,6 @@ def test_check_json_has_the_contract_keys(tmp_path, capsys):
     assert info["species"] == ["electrons", "holes", "trapped:deep"]
     assert info["counts"]["acceptors"] == 100 and info["counts"]["T_deep"] == 20
     assert set(info["steady_continuum"]) == set(info["species"])
-
-
-SMALL = """
-title = "small exact box"
-[material]
-temperature_K = 300.0
-intrinsic_density_cm3 = 1.0e10
-radiative_cm3_s = 1.0e-10
-donors_cm3 = 1.0e10
-[volume]
-volume_cm3 = 2.0e-10
-[[traps]]
-label = "t"
-count = 2
-energy_eV = 0.0
-electron_capture_cm3_s = 1.0e-16
-hole_capture_cm3_s = 1.0e-16
-[run]
-trajectories = 8
-duration_s = 20.0
-samples = 128
-"""
 
 
 def test_exact_command_writes_the_contract(tmp_path, capsys):

@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from birth_death import RESERVOIR_BOX
 
 import grmc
 from grmc import exact
@@ -117,21 +118,7 @@ def test_linear_birth_death_volume_has_no_correction():
     """Linear laws only (constant generation and reservoir exchange, loss N_e / t_x): the
     linear-noise mean is exact (van Kampen 2007, ch. X), so both terms are exactly zero; the
     master equation agrees with the continuum mean to its own accuracy."""
-    model = grmc.build_model(grmc.load_scenario(text="""
-title = "linear birth-death"
-[material]
-temperature_K = 300.0
-intrinsic_density_cm3 = 1.0e10
-acceptors_cm3 = 1.0e17
-[volume]
-volume_cm3 = 1.0e-15
-[light]
-generation_cm3_s = 1.0e20
-[reservoir]
-carrier = "electrons"
-density_cm3 = 1.0e15
-exchange_time_s = 1.0e-7
-"""))
+    model = grmc.build_model(grmc.load_scenario(text=RESERVOIR_BOX))
     no = next_order(model)
     assert np.all(no.delta == 0.0)
     assert np.all(no.var_error == 0.0)

@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from birth_death import RESERVOIR_BOX
 
 import grmc
 from grmc import continuum, exact
@@ -110,21 +111,7 @@ def test_bad_accuracy_is_refused():
 def test_linear_noise_covariance_grows_as_a_birth_death_from_a_sharp_start():
     """Linear birth-death (generation, reservoir exchange, loss N_e/t_x): the linear-noise
     variance from a sharp start is var (1 - exp(-2 t / t_x)) (van Kampen 2007, ch. X)."""
-    model = grmc.build_model(grmc.load_scenario(text="""
-title = "linear birth-death"
-[material]
-temperature_K = 300.0
-intrinsic_density_cm3 = 1.0e10
-acceptors_cm3 = 1.0e17
-[volume]
-volume_cm3 = 1.0e-15
-[light]
-generation_cm3_s = 1.0e20
-[reservoir]
-carrier = "electrons"
-density_cm3 = 1.0e15
-exchange_time_s = 1.0e-7
-"""))
+    model = grmc.build_model(grmc.load_scenario(text=RESERVOIR_BOX))
     lna = continuum.lna(model)
     t = np.linspace(0.0, 5.0e-7, 51)
     var = np.einsum("tii->ti", covariance_from_zero(lna, t))[:, 0]
