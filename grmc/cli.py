@@ -344,6 +344,46 @@ def cmd_sweep(args) -> int:
     return EXIT_OK
 
 
+def _settings(args) -> dict[str, float]:
+    """``--set KEY=NUMBER`` (repeatable) as a dict; exit 2 naming the option when malformed."""
+    out = {}
+    for text in args.set or ():
+        key, sep, value = text.partition("=")
+        try:
+            out[key.strip()] = float(value)
+        except ValueError:
+            sep = ""
+        if not sep or not key.strip():
+            raise UsageError(f"{args.scenario}: --set: expected KEY=NUMBER (e.g. "
+                             f"volume.volume_cm3=1e-18), got {text!r}")
+    return out
+
+
+def cmd_solve(args) -> int:
+    from .dataset import save
+    from .report import format_solve_table
+    from .solve import choose_method, solve_with
+    from .sweep import point_scenario
+
+    scenario = load_scenario(args.scenario)
+    settings = _settings(args)
+    if settings:
+        scenario = point_scenario(scenario, settings)
+    check_counts(scenario)
+    target = _accuracy_options(args)
+    out = _output_file(args.output, _default_output(args.scenario, "_solve"))
+    method, reason = choose_method(scenario, target["accuracy"], max_states=args.max_states)
+    print(f"method: {method}, because {reason}", flush=True)
+    if method == "monte-carlo":
+        _refuse_absurd_run(scenario, None, args.workers)
+    ds = solve_with(method, reason, scenario, seed=args.seed, workers=args.workers,
+                    max_states=args.max_states, command=args.command_line, **target)
+    save(ds, out)
+    print(format_solve_table(ds))
+    print(f"wrote {out}")
+    return EXIT_OK
+
+
 def cmd_demo(args) -> int:
     from .demo import demo_scenario_path, run_demo
 
@@ -414,6 +454,27 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("scenario", help="scenario file (TOML)")
     p.add_argument("-o", "--output", help="output file (default outputs/<stem>_exact.nc)")
     p.set_defaults(func=cmd_exact)
+
+    p = sub.add_parser("solve", help="the answer to a stated accuracy at any volume: the "
+                       "method (exact, linear noise or Monte Carlo) chosen and justified")
+    p.add_argument("scenario", help="scenario file (TOML)")
+    p.add_argument("--accuracy", metavar="REL", required=True,
+                   help="relative accuracy wanted of the means, variances and spectra "
+                        "(0 < REL < 1, e.g. 0.05)")
+    p.add_argument("-o", "--output", help="output file (default outputs/<stem>_solve.nc)")
+    p.add_argument("--max-states", type=_positive_int, default=200_000, metavar="N",
+                   help="largest state space given to the master equation (default 200000)")
+    p.add_argument("--band", metavar="F1:F2",
+                   help="Monte Carlo: band [Hz] the spectra must reach the accuracy in")
+    p.add_argument("--max-seconds", metavar="S",
+                   help="Monte Carlo: time budget of the rounds (default 600)")
+    p.add_argument("--seed", type=_nonneg_int, help="Monte Carlo: override [run] seed")
+    p.add_argument("--workers", type=_positive_int, help="Monte Carlo: threads (default: "
+                   "all cores)")
+    p.add_argument("--set", action="append", metavar="KEY=NUMBER",
+                   help="set section.key (or traps.<label>.key) of the scenario, e.g. "
+                        "volume.volume_cm3=1e-18; repeatable")
+    p.set_defaults(func=cmd_solve)
 
     p = sub.add_parser("sweep", help="a parameter sweep (exact or Monte Carlo per point)")
     p.add_argument("scenario", help="scenario file (TOML)")
