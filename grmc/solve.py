@@ -341,6 +341,9 @@ def solve_with(method: Method, reason: str, scenario: Scenario, *, accuracy: flo
     if method != "monte-carlo":
         scenario, band = computed_window(scenario, accuracy, band_Hz)
         pulse = scenario.start.excess_pairs > 0  # the transient is part of the answer
+        rb = scenario.readout.band_Hz if scenario.readout is not None else None
+        if band is not None and rb is not None:  # the spectra also span the readout band
+            band = (min(band[0], rb[0]), max(band[1], rb[1]))
     if method == "exact":
         return solve_exact(scenario, accuracy=accuracy, reason=reason, max_states=max_states,
                            command=command, transient=pulse,
