@@ -305,6 +305,17 @@ def cmd_exact(args) -> int:
     return EXIT_OK
 
 
+def _sweep_accuracy(args) -> float:
+    """``--accuracy`` of a sweep (the chooser's target per point), checked (exit 2)."""
+    from .sweep import DEFAULT_ACCURACY
+
+    if args.accuracy is None:
+        return DEFAULT_ACCURACY
+    ns = argparse.Namespace(scenario=args.scenario, accuracy=args.accuracy, band=None,
+                            max_seconds=None)
+    return _accuracy_options(ns)["accuracy"]
+
+
 def cmd_sweep(args) -> int:
     from .report import format_sweep_point
     from .sweep import SchedulerUnreachable, parse_vary, parts_dir, round_integers, run_sweep
@@ -331,7 +342,7 @@ def cmd_sweep(args) -> int:
         run_sweep(scenario, varies, out, scheduler=args.scheduler, resume=args.resume,
                   workers=args.workers, command=args.command_line,
                   noise_frequencies=tuple(args.frequency) if args.frequency else None,
-                  on_point=report)
+                  on_point=report, accuracy=_sweep_accuracy(args))
     except SchedulerUnreachable as exc:
         print(f"grmc: error: {exc}", file=sys.stderr)
         return EXIT_FAIL
@@ -486,6 +497,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--frequency", type=_positive_float, action="append", metavar="HZ",
                    help="with a [readout]: record the current noise at this frequency "
                    "(repeatable; default 1000 Hz)")
+    p.add_argument("--accuracy", metavar="REL",
+                   help="accuracy given to the method chooser of each point (exact, linear "
+                        "noise or Monte Carlo; default 0.05)")
     p.add_argument("-o", "--output", help="output file (default outputs/<stem>_sweep.nc)")
     p.set_defaults(func=cmd_sweep)
 

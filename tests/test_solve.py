@@ -146,7 +146,7 @@ def ladder(volume: float):
 
 def test_ladder_small_end_exact_agrees_with_a_fixed_monte_carlo_run():
     """1e-16 cm^3 (one electron, a hundred holes): the master equation is chosen; its mean
-    and variance of every count agree with a fixed Monte Carlo run (seed 5, 64 trajectories)
+    and variance of every count agree with a fixed Monte Carlo run (seed 5, 16 trajectories)
     within 3 of the run's standard errors (tolerance from the estimator's standard error)
     and the run's 95 % half-width is inside the 5 % target where it resolves the value."""
     from grmc.simulate import run
@@ -155,7 +155,7 @@ def test_ladder_small_end_exact_agrees_with_a_fixed_monte_carlo_run():
     scen = ladder(1.0e-16)
     ds = solve(scen, 0.05, progress=False)
     assert ds.attrs["method"] == "exact"
-    mc = run(scen, trajectories=64, seed=5, progress=False, workers=1)
+    mc = run(scen, trajectories=16, seed=5, progress=False, workers=1)
     for name in ("stationary_mean", "stationary_var"):
         ref, err = mc[name].values, mc[name + "_stderr"].values
         for s in range(2):  # electrons, holes
