@@ -278,3 +278,33 @@ def test_cli_solve_bad_values_exit_2_naming_the_option(tmp_path, args, option):
     lines = proc.stderr.strip().splitlines()
     assert len(lines) == 1 and option in lines[0], proc.stderr
     assert not out.exists()
+
+
+# ------------------------------------------------------------------ the chooser in sweeps
+def test_sweep_points_use_the_chooser_and_the_figure_draws_the_prediction():
+    """Two sweep points of the pair reaction: ten pairs (the master equation fits) and a
+    million (linear noise, its mean the continuum plus the -1/4 correction of Darvey, Ninham
+    & Staff 1966's large-count limit); the method and the reason are recorded per point,
+    and the validity figure draws the predicted deviation |mean_next_order / continuum|
+    beside the measured one."""
+    from grmc.plotting import plot_validity
+    from grmc.sweep import Vary, assemble, evaluate_point, point_scenario
+
+    base = grmc.load_scenario(text=pair_text(10.0))
+    results = []
+    for i, vol in enumerate((1.0e-15, 1.0e-10)):
+        res = evaluate_point(point_scenario(base, {"volume.volume_cm3": vol}), i)
+        res["assignment"] = {"volume.volume_cm3": vol}
+        results.append(res)
+    assert [r["method"] for r in results] == ["exact", "linear-noise"]
+    assert "fits" in results[0]["method_reason"]
+    assert "predicted next-order error" in results[1]["method_reason"]
+    h = results[1]["species"].index("holes")
+    assert results[1]["mean"][h] == pytest.approx(1.0e6 - 0.25, rel=1e-12)
+    vary = Vary("volume.volume_cm3", (1.0e-15, 1.0e-10))
+    ds = assemble(base, [vary], results)
+    assert list(ds["method"].values) == ["exact", "linear-noise"]
+    assert ds["mean_next_order"].shape == (2, 2)  # sweep, species (electrons, holes)
+    ax = plot_validity(ds, "mean")
+    labels = [line.get_label() for line in ax.get_lines()]
+    assert any("predicted" in lab for lab in labels), labels
