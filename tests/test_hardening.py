@@ -435,14 +435,15 @@ def test_every_exported_name_exists():
 
 
 def test_sweep_point_with_an_absurd_monte_carlo_cost_is_refused():
-    """A point too large for the exact solver falls back to Monte Carlo; when that run could
-    never finish (a 1e300 s window), the point is refused naming the key, not started."""
+    """A point too large for the exact solver, and asked for an accuracy (1e-9) the linear
+    noise cannot promise, falls back to Monte Carlo; when that run could never finish (a
+    1e300 s window), the point is refused naming the key, not started."""
     from grmc.scenario import ScenarioError, load_scenario
     from grmc.sweep import evaluate_point
 
     scen = load_scenario(text=BASE.replace("duration_s = 1.0e-7", "duration_s = 1e300"))
     with pytest.raises(ScenarioError, match=r"\[run\] duration_s"):
-        evaluate_point(scen, 0, exact_limit=1)
+        evaluate_point(scen, 0, exact_limit=1, accuracy=1e-9)
 
 
 def test_scenario_error_survives_pickling():

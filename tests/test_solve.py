@@ -242,8 +242,8 @@ def _cli(*args):
 def test_cli_solve_writes_the_method_and_its_reason(tmp_path):
     """The method is printed on one line before the table; the file carries the method,
     its reason and the target, the band-averaged spectra (computed: low = high, said in the
-    variable's comment) and the next-order correction; plot reads it (common practice: the
-    output contract of docs/file-format.md)."""
+    variable's comment) and the next-order correction; plot and export read it (common
+    practice: the output contract of docs/file-format.md)."""
     out = tmp_path / "ladder.nc"
     proc = _cli("solve", LADDER, "--accuracy", "0.05", "--set", "volume.volume_cm3=1e-18",
                 "-o", str(out))
@@ -259,6 +259,9 @@ def test_cli_solve_writes_the_method_and_its_reason(tmp_path):
         assert name in ds.variables, name
     plot = _cli("plot", str(out), "-o", str(tmp_path / "fig"))
     assert plot.returncode == 0, plot.stderr
+    export = _cli("export", str(out), "--format", "spice", "-o", str(tmp_path / "n.cir"))
+    assert export.returncode == 0, export.stderr
+    assert (tmp_path / "n.cir").exists()
 
 
 @pytest.mark.parametrize("args, option", [
