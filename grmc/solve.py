@@ -334,10 +334,15 @@ def solve_with(method: Method, reason: str, scenario: Scenario, *, accuracy: flo
     scenario : Scenario
     accuracy : float  Relative accuracy target [1]
     max_states : int  Exact: the state limit [states]
-    band_Hz, max_seconds, seed, workers, progress : Monte Carlo only: as in
-        :func:`grmc.simulate.run` ([Hz], [s])
+    band_Hz : (float, float), optional  The band the spectra must reach the accuracy in
+        (default ``[run] band_Hz``, else ``[readout] band_Hz``, else from the linear-noise
+        corners) [Hz]
+    max_seconds, seed, workers, progress : Monte Carlo only: as in :func:`grmc.simulate.run`
     command : str, optional  Command line recorded in ``history``
     """
+    readout_band = scenario.readout.band_Hz if scenario.readout is not None else None
+    if band_Hz is None and scenario.run.band_Hz is None and readout_band is not None:
+        band_Hz = tuple(map(float, readout_band))  # the band the readout is judged in
     if method != "monte-carlo":
         scenario, band = computed_window(scenario, accuracy, band_Hz)
         pulse = scenario.start.excess_pairs > 0  # the transient is part of the answer
