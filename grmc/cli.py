@@ -361,6 +361,17 @@ def cmd_exact(args) -> int:
     return EXIT_OK
 
 
+def _sweep_accuracy(args) -> float:
+    """``--accuracy`` of a sweep (the chooser's target per point), checked (exit 2)."""
+    from .sweep import DEFAULT_ACCURACY
+
+    if args.accuracy is None:
+        return DEFAULT_ACCURACY
+    ns = argparse.Namespace(scenario=args.scenario, accuracy=args.accuracy, band=None,
+                            max_seconds=None)
+    return _accuracy_options(ns)["accuracy"]
+
+
 def cmd_sweep(args) -> int:
     from .report import format_sweep_point
     from .sweep import SchedulerUnreachable, parse_vary, parts_dir, round_integers, run_sweep
@@ -387,7 +398,7 @@ def cmd_sweep(args) -> int:
         run_sweep(scenario, varies, out, scheduler=args.scheduler, resume=args.resume,
                   workers=args.workers, command=args.command_line,
                   noise_frequencies=tuple(args.frequency) if args.frequency else None,
-                  on_point=report)
+                  on_point=report, accuracy=_sweep_accuracy(args))
     except SchedulerUnreachable as exc:
         print(f"grmc: error: {exc}", file=sys.stderr)
         return EXIT_FAIL
@@ -396,6 +407,46 @@ def cmd_sweep(args) -> int:
         print(f"grmc: {how}; finished points are kept in {parts_dir(out)}, "
               "run the same command with --resume to continue", file=sys.stderr)
         return EXIT_TERMINATED if isinstance(exc, Terminated) else EXIT_INTERRUPTED
+    print(f"wrote {out}")
+    return EXIT_OK
+
+
+def _settings(args) -> dict[str, float]:
+    """``--set KEY=NUMBER`` (repeatable) as a dict; exit 2 naming the option when malformed."""
+    out = {}
+    for text in args.set or ():
+        key, sep, value = text.partition("=")
+        try:
+            out[key.strip()] = float(value)
+        except ValueError:
+            sep = ""
+        if not sep or not key.strip():
+            raise UsageError(f"{args.scenario}: --set: expected KEY=NUMBER (e.g. "
+                             f"volume.volume_cm3=1e-18), got {text!r}")
+    return out
+
+
+def cmd_solve(args) -> int:
+    from .dataset import save
+    from .report import format_solve_table
+    from .solve import choose_method, solve_with
+    from .sweep import point_scenario
+
+    scenario = load_scenario(args.scenario)
+    settings = _settings(args)
+    if settings:
+        scenario = point_scenario(scenario, settings)
+    check_counts(scenario)
+    target = _accuracy_options(args)
+    out = _output_file(args.output, _default_output(args.scenario, "_solve"))
+    method, reason = choose_method(scenario, target["accuracy"], max_states=args.max_states)
+    print(f"method: {method}, because {reason}", flush=True)
+    if method == "monte-carlo":
+        _refuse_absurd_run(scenario, None, args.workers)
+    ds = solve_with(method, reason, scenario, seed=args.seed, workers=args.workers,
+                    max_states=args.max_states, command=args.command_line, **target)
+    save(ds, out)
+    print(format_solve_table(ds))
     print(f"wrote {out}")
     return EXIT_OK
 
@@ -482,6 +533,27 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("-o", "--output", help="output file (default outputs/<stem>_exact.nc)")
     p.set_defaults(func=cmd_exact)
 
+    p = sub.add_parser("solve", help="the answer to a stated accuracy at any volume: the "
+                       "method (exact, linear noise or Monte Carlo) chosen and justified")
+    p.add_argument("scenario", help="scenario file (TOML)")
+    p.add_argument("--accuracy", metavar="REL", required=True,
+                   help="relative accuracy wanted of the means, variances and spectra "
+                        "(0 < REL < 1, e.g. 0.05)")
+    p.add_argument("-o", "--output", help="output file (default outputs/<stem>_solve.nc)")
+    p.add_argument("--max-states", type=_positive_int, default=200_000, metavar="N",
+                   help="largest state space given to the master equation (default 200000)")
+    p.add_argument("--band", metavar="F1:F2",
+                   help="Monte Carlo: band [Hz] the spectra must reach the accuracy in")
+    p.add_argument("--max-seconds", metavar="S",
+                   help="Monte Carlo: time budget of the rounds (default 600)")
+    p.add_argument("--seed", type=_nonneg_int, help="Monte Carlo: override [run] seed")
+    p.add_argument("--workers", type=_positive_int, help="Monte Carlo: threads (default: "
+                   "all cores)")
+    p.add_argument("--set", action="append", metavar="KEY=NUMBER",
+                   help="set section.key (or traps.<label>.key) of the scenario, e.g. "
+                        "volume.volume_cm3=1e-18; repeatable")
+    p.set_defaults(func=cmd_solve)
+
     p = sub.add_parser("sweep", help="a parameter sweep (exact or Monte Carlo per point)")
     p.add_argument("scenario", help="scenario file (TOML)")
     p.add_argument("--vary", action="append", required=True, metavar="KEY=START:STOP:N[:log]",
@@ -492,6 +564,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--frequency", type=_positive_float, action="append", metavar="HZ",
                    help="with a [readout]: record the current noise at this frequency "
                    "(repeatable; default 1000 Hz)")
+    p.add_argument("--accuracy", metavar="REL",
+                   help="accuracy given to the method chooser of each point (exact, linear "
+                        "noise or Monte Carlo; default 0.05)")
     p.add_argument("-o", "--output", help="output file (default outputs/<stem>_sweep.nc)")
     p.set_defaults(func=cmd_sweep)
 

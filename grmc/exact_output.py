@@ -32,8 +32,13 @@ def exact_frequencies(scenario: Scenario) -> np.ndarray:
 
 
 def exact_dataset(scenario: Scenario, *, command: str | None = None,
-                  max_states: int = exact.DEFAULT_MAX_STATES):
+                  max_states: int = exact.DEFAULT_MAX_STATES, transient: bool = True,
+                  freqs: np.ndarray | None = None):
     """Solve the scenario exactly and return the Dataset ``grmc exact`` writes.
+
+    With ``transient=False`` the transient from the start state (``count_mean``,
+    ``count_var``) is left out: the stationary law and spectra only.  ``freqs`` [Hz]
+    replaces the default grid (:func:`exact_frequencies`).
 
     Raises
     ------
@@ -41,7 +46,7 @@ def exact_dataset(scenario: Scenario, *, command: str | None = None,
         When the truncation would need more than ``max_states`` states.
     """
     model = build_model(scenario)
-    freqs = exact_frequencies(scenario)
+    freqs = exact_frequencies(scenario) if freqs is None else np.asarray(freqs, dtype=float)
     run = scenario.run
     t = np.arange(run.samples) * (run.duration_s / run.samples)
     # The transient starts where a Monte Carlo window starts: the engine's start state (the
@@ -55,9 +60,10 @@ def exact_dataset(scenario: Scenario, *, command: str | None = None,
         t_eval, note = t, "start state plus excess_pairs at t = 0 (settling not applied)"
     else:
         t_eval, note = t + run.settle_s, "start state evolved through settle_s"
-    res = exact.solve(model, freqs=freqs, times=t_eval, x0=x0, max_states=max_states)
-    th = theory(model, freqs, times=t, start=res.transient_mean[0],
-                current=scenario.readout is not None)
+    res = exact.solve(model, freqs=freqs, times=t_eval if transient else None, x0=x0,
+                      max_states=max_states)
+    start = res.transient_mean[0] if transient else x0.astype(np.float64)
+    th = theory(model, freqs, times=t, start=start, current=scenario.readout is not None)
     # the file's species: with a spread trap level its total beside the sub-levels (the
     # projections below are identities otherwise; the theory is projected in grmc.theory)
     proj, pmat = model.project, model.project_matrix
@@ -68,11 +74,14 @@ def exact_dataset(scenario: Scenario, *, command: str | None = None,
                            else res.var),
         "psd": (("species", "frequency"), np.real(np.einsum("iif->if", pmat(res.psd_matrix)))
                 if sub else res.psd),
-        "count_mean": (("species", "t"), proj(res.transient_mean).T),
-        "count_var": (("species", "t"), (res.transient_output_var if sub
-                                         else res.transient_var).T),
         "probability_outside": ((), float(res.mass_outside)),
     }
+    if transient:
+        data["count_mean"] = (("species", "t"), proj(res.transient_mean).T)
+        data["count_var"] = (("species", "t"), (res.transient_output_var if sub
+                                                else res.transient_var).T)
+    else:
+        note = "transient not computed"
     states = np.rint(proj(res.states)).astype(np.int64)
     lo = int(states.min())
     hi = int(states.max())

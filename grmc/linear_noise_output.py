@@ -12,6 +12,7 @@ import numpy as np
 import scipy.linalg
 
 from . import continuum
+from .bandnoise import band_variables
 from .dataset import finish
 from .exact_output import exact_frequencies
 from .model import Model, build_model
@@ -69,13 +70,20 @@ def _current_vars(model: Model, freqs: np.ndarray, smat: np.ndarray, x: np.ndarr
     }
     if counts_events(model):
         data["current_shot_noise"] = ((), theory.white)
+    if readout.band_Hz is not None:  # a computed spectrum: no sampling interval
+        data.update(band_variables(freqs, theory.psd, readout.band_Hz,
+                                   lna=lambda f: lna_current(model, f, x=x).psd))
     attrs = {"readout_bias_V": readout.bias_V, "readout_length_cm": readout.length_cm,
              "readout_current": describe_current(model)}
     return data, attrs
 
 
-def linear_noise_dataset(scenario: Scenario, *, command: str | None = None):
+def linear_noise_dataset(scenario: Scenario, *, command: str | None = None,
+                         transient: bool = True):
     """The linear-noise answer with the variable names of an exact file.
+
+    With ``transient=False`` the continuum transient and the covariance grown from the start
+    (``count_mean``, ``count_var``, ``count_continuum``) are left out.
 
     Raises
     ------
@@ -92,10 +100,6 @@ def linear_noise_dataset(scenario: Scenario, *, command: str | None = None):
     lna = continuum.lna(model)
     smat = continuum.lna_psd(model, freqs)
     psd = np.real(np.einsum("iif->if", smat))
-    x0 = model.nearest_neutral_state(no.steady).astype(np.float64)
-    x0[:2] += scenario.start.excess_pairs
-    mean_t = continuum.transient(model, x0, t)
-    var_t = np.einsum("tii->ti", covariance_from_zero(lna, t))
     data = {
         "stationary_mean": (("species",), no.steady + no.delta),
         "stationary_var": (("species",), no.var_lna),
@@ -105,10 +109,15 @@ def linear_noise_dataset(scenario: Scenario, *, command: str | None = None):
         "relaxation_time_lna": (("mode",), np.asarray(lna.relaxation_times, dtype=float)),
         "psd": (("species", "frequency"), psd),
         "psd_lna": (("species", "frequency"), psd),
-        "count_mean": (("species", "t"), mean_t.T),
-        "count_var": (("species", "t"), var_t.T),
-        "count_continuum": (("species", "t"), mean_t.T),
     }
+    if transient:
+        x0 = model.nearest_neutral_state(no.steady).astype(np.float64)
+        x0[:2] += scenario.start.excess_pairs
+        mean_t = continuum.transient(model, x0, t)
+        var_t = np.einsum("tii->ti", covariance_from_zero(lna, t))
+        data["count_mean"] = (("species", "t"), mean_t.T)
+        data["count_var"] = (("species", "t"), var_t.T)
+        data["count_continuum"] = (("species", "t"), mean_t.T)
     attrs = {}
     if scenario.readout is not None:
         more, attrs = _current_vars(model, freqs, smat, no.steady)
@@ -123,6 +132,7 @@ def linear_noise_dataset(scenario: Scenario, *, command: str | None = None):
         ds, title=scenario.title, scenario_toml=scenario.text, command=command,
         method="linear-noise approximation with the next-order correction of the means",
         transient_start="start state (nearest neutral state to the continuum steady state, "
-        "plus excess_pairs) at t = 0; covariance grown from zero about the steady state",
+        "plus excess_pairs) at t = 0; covariance grown from zero about the steady state"
+        if transient else "transient not computed",
         volume_cm3=float(scenario.volume.volume_cm3), **attrs,
     )

@@ -479,13 +479,34 @@ _DEVIATIONS = {
 }
 
 
+def _predicted_deviation(ax: Axes, ds, species: str, color: str) -> None:
+    """The next-order prediction |mean_next_order / continuum| of a sweep file's points,
+    dashed, beside the measured deviations of the same species."""
+    if "mean_next_order" not in ds or "steady_continuum" not in ds:
+        return
+    x = np.asarray(ds["stationary_mean"].sel(species=species).values, dtype=float)
+    ss = np.asarray(ds["steady_continuum"].sel(species=species).values, dtype=float)
+    delta = np.asarray(ds["mean_next_order"].sel(species=species).values, dtype=float)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        y = np.abs(delta / ss)
+    ok = np.isfinite(x) & np.isfinite(y) & (x > 0) & (y > 0)
+    if np.count_nonzero(ok) < 1:
+        return
+    order = np.argsort(x[ok])
+    ax.plot(x[ok][order], y[ok][order], ls="--", lw=1.2, color=color, marker="x", ms=4,
+            label=f"{species}: predicted (next-order correction / continuum)")
+
+
 def plot_validity(ds: xr.Dataset | Result, quantity: str = "mean", ax: Axes | None = None
                   ) -> Axes:
     """Where the continuum answer fails: |relative deviation| against the mean count.
 
     One line per carrier species of a sweep file (``deviation_<quantity>`` with its standard
     error as error bars, against ``stationary_mean``, log-log), the 10 % level drawn, and the
-    count where each line crosses it marked (:func:`grmc.result.crossing_count`).
+    count where each line crosses it marked (:func:`grmc.result.crossing_count`).  For the
+    mean, the deviation the next-order correction predicts (``mean_next_order`` over the
+    continuum mean; Grima, J. Chem. Phys. 133, 035101, 2010) is drawn dashed beside the
+    measured points.
 
     Parameters
     ----------
@@ -519,6 +540,8 @@ def plot_validity(ds: xr.Dataset | Result, quantity: str = "mean", ax: Axes | No
         floor = 1e-6
         ax.errorbar(xs, np.maximum(ys, floor), yerr=np.where(np.isfinite(es), es, 0),
                     marker="o", ms=4, lw=1.2, capsize=2, color=f"C{k}", label=sp)
+        if quantity == "mean":
+            _predicted_deviation(ax, ds, sp, f"C{k}")
         cross = crossing_count(xs, ys, DEVIATION_THRESHOLD)
         if cross is not None:
             ax.axvline(cross, color=f"C{k}", ls=":", lw=1)

@@ -11,7 +11,8 @@ import numpy as np
 from .model import ELEMENTARY_CHARGE_C
 from .result import PowerLaw, Result, from_dataset, is_sublevel
 
-__all__ = ["format_run_table", "format_exact_table", "format_sweep_point", "FLAG_SIGMAS"]
+__all__ = ["format_run_table", "format_exact_table", "format_solve_table", "format_sweep_point",
+           "FLAG_SIGMAS"]
 
 #: A Monte Carlo value is flagged when it differs from the continuum or linear-noise value by
 #: more than this many standard errors (two-sided p ~ 0.003 for a normal estimator).
@@ -311,6 +312,51 @@ def format_exact_table(ds) -> str:
                  "be off)")
     lines += _spectral_lines(res) + _current_lines(res)
     return "\n".join(lines)
+
+
+def _next_order_lines(res: Result) -> list[str]:
+    """The predicted next-order correction of each mean beside the continuum mean."""
+    ds = res.ds
+    if "mean_next_order" not in ds or "steady_continuum" not in ds:
+        return []
+    parts = []
+    for i, name in enumerate(res.species):
+        delta, ss = float(ds["mean_next_order"][i]), float(ds["steady_continuum"][i])
+        rel = f" ({_pct(delta / ss)})" if ss else ""
+        parts.append(f"{name} {_g(delta, 3)}{rel}")
+    return ["  next-order correction of the means [counts]: " + ", ".join(parts)]
+
+
+def format_solve_table(ds) -> str:
+    """What ``grmc solve`` prints: the method and its reason, then the table of that
+    method (:func:`format_run_table` for Monte Carlo, :func:`format_exact_table` for the
+    exact and linear-noise answers) and the next-order correction of the means.
+
+    Parameters
+    ----------
+    ds : xarray.Dataset or Result  Output of :func:`grmc.solve.solve`
+
+    Returns
+    -------
+    str
+    """
+    res = _as_result(ds)
+    attrs = res.ds.attrs
+    method = str(attrs.get("method", "?"))
+    if method == "monte-carlo":
+        table = format_run_table(res)
+    elif method == "exact":
+        table = format_exact_table(res)
+    else:
+        lines = [f"{res.title}  (linear-noise answer; the means include the next-order "
+                 "correction)"]
+        lines += _species_rows(res, "LNA")
+        lines += _spectral_lines(res) + _current_lines(res)
+        table = "\n".join(lines)
+    target = attrs.get("accuracy_target")
+    head = (f"method: {method} (accuracy target +-{100 * float(target):g} %)" if target
+            else f"method: {method}")
+    return "\n".join([head, table, *_next_order_lines(res)])
 
 
 def format_sweep_point(result: dict, varied: dict) -> str:

@@ -285,7 +285,8 @@ class Result:
             return self
         ds = self.ds.isel(sweep=index)
         method = str(ds["method"].values) if "method" in ds else METHOD_MC
-        return from_dataset(ds, method=METHOD_EXACT if method == "exact" else METHOD_MC,
+        computed = method in ("exact", "linear-noise")  # no sampling error
+        return from_dataset(ds, method=METHOD_EXACT if computed else METHOD_MC,
                             note=f"(sweep point {index + 1} of {self.ds.sizes['sweep']})")
 
     @property
@@ -372,8 +373,8 @@ class Result:
 def _method(ds: xr.Dataset) -> str:
     if "deviation_mean" in ds or ds.attrs.get("kind") == "sweep":
         return METHOD_SWEEP
-    if "probability_outside" in ds:
-        return METHOD_EXACT
+    if "probability_outside" in ds or ds.attrs.get("method") == "linear-noise":
+        return METHOD_EXACT  # computed spectra (master equation, linear noise): no intervals
     return METHOD_MC
 
 

@@ -27,7 +27,8 @@ import numpy as np
 from . import continuum, exact
 from .model import MAX_FACTORS, Model, build_model
 from .next_order import NextOrder, next_order
-from .scenario import Scenario
+from .scenario import Scenario, ScenarioError
+from .solve_bands import add_band_spectra
 
 __all__ = [
     "DEFAULT_MAX_STATES",
@@ -40,6 +41,7 @@ __all__ = [
     "solve_exact",
     "solve_linear_noise",
     "solve_monte_carlo",
+    "solve_with",
 ]
 
 Method = Literal["exact", "linear-noise", "monte-carlo"]
@@ -214,8 +216,12 @@ def _method_attrs(ds, method: Method, reason: str, accuracy: float | None):
 
 
 def solve_exact(scenario: Scenario, *, accuracy: float | None = None, reason: str = "",
-                max_states: int = DEFAULT_MAX_STATES, command: str | None = None):
+                max_states: int = DEFAULT_MAX_STATES, command: str | None = None,
+                transient: bool = True, freqs: np.ndarray | None = None):
     """The master-equation answer as a Dataset (the ``grmc exact`` file plus the method).
+
+    ``transient`` and ``freqs`` [Hz] as in :func:`grmc.exact_output.exact_dataset`; the
+    band-averaged spectra (:mod:`grmc.solve_bands`) are added.
 
     Raises
     ------
@@ -225,13 +231,14 @@ def solve_exact(scenario: Scenario, *, accuracy: float | None = None, reason: st
     """
     from .exact_output import exact_dataset
 
-    ds = exact_dataset(scenario, command=command, max_states=max_states)
+    ds = add_band_spectra(exact_dataset(scenario, command=command, max_states=max_states,
+                                        transient=transient, freqs=freqs))
     return _method_attrs(ds, "exact", reason or "the master equation, solved exactly",
                          accuracy)
 
 
 def solve_linear_noise(scenario: Scenario, *, accuracy: float | None = None, reason: str = "",
-                       command: str | None = None):
+                       command: str | None = None, transient: bool = True):
     """The linear-noise answer as a Dataset with the variables of ``grmc exact`` files.
 
     ``stationary_mean`` is the continuum mean plus its next-order correction
@@ -243,19 +250,20 @@ def solve_linear_noise(scenario: Scenario, *, accuracy: float | None = None, rea
     """
     from .linear_noise_output import linear_noise_dataset
 
-    ds = linear_noise_dataset(scenario, command=command)
+    ds = add_band_spectra(linear_noise_dataset(scenario, command=command,
+                                               transient=transient))
     return _method_attrs(ds, "linear-noise", reason or "the linear-noise approximation",
                          accuracy)
 
 
 def solve_monte_carlo(scenario: Scenario, accuracy: float, *, reason: str = "",
-                      band_Hz=None, max_seconds: float | None = None, workers=None,
-                      progress: bool = True, command: str | None = None):
+                      band_Hz=None, max_seconds: float | None = None, seed: int | None = None,
+                      workers=None, progress: bool | None = True, command: str | None = None):
     """The adaptive Monte Carlo run to ``accuracy``, with the method and its reason."""
     from .simulate import run
 
     ds = run(scenario, accuracy=accuracy, band_Hz=band_Hz, max_seconds=max_seconds,
-             workers=workers, progress=progress, command=command)
+             seed=seed, workers=workers, progress=progress, command=command)
     if "mean_next_order" not in ds:
         from .dataset import VARIABLES
 
@@ -270,16 +278,84 @@ def solve_monte_carlo(scenario: Scenario, accuracy: float, *, reason: str = "",
                          accuracy)
 
 
+def computed_window(scenario: Scenario, accuracy: float,
+                    band_Hz=None) -> tuple[Scenario, tuple[float, float] | None]:
+    """The scenario with the window an adaptive run would choose (:mod:`grmc.window`) where
+    ``[run]`` leaves ``duration_s``, ``samples`` or ``settle_s`` out, so that the exact and
+    linear-noise spectra span the same band as a Monte Carlo answer and the transient covers
+    the slowest relaxation time, not the default microsecond."""
+    from .simulate import scenario_with
+    from .window import choose_window, given_run_keys
+
+    if {"duration_s", "samples", "settle_s"} <= given_run_keys(scenario):
+        return scenario, band_Hz
+    try:
+        choice = choose_window(scenario_with(scenario, accuracy=float(accuracy)),
+                               accuracy=float(accuracy), band_Hz=band_Hz,
+                               max_seconds=scenario.run.max_seconds, first=None, workers=1)
+    except (ScenarioError, continuum.ContinuumError):  # no time scale: keep the window
+        return scenario, band_Hz
+    rs = choice.scenario.run
+    return scenario_with(scenario, duration_s=rs.duration_s, samples=rs.samples,
+                         settle_s=rs.settle_s), tuple(map(float, choice.band_Hz))
+
+
+def band_frequencies(band_Hz: tuple[float, float]) -> np.ndarray:
+    """The edges of the bands of 10 per decade covering ``band_Hz``, with each band's
+    geometric centre between them: 20 points per decade, the exact solver's resolvents
+    spent where the band-averaged spectra need them [Hz]."""
+    from .bands import BANDS_PER_DECADE
+
+    k1 = math.floor(math.log10(band_Hz[0]) * BANDS_PER_DECADE + 1e-9)
+    k2 = math.ceil(math.log10(band_Hz[1]) * BANDS_PER_DECADE - 1e-9)
+    return 10.0 ** (np.arange(2 * k1, 2 * k2 + 1) / (2.0 * BANDS_PER_DECADE))
+
+
 def solve(scenario: Scenario, accuracy: float, *, max_states: int = DEFAULT_MAX_STATES,
-          band_Hz=None, max_seconds: float | None = None, workers=None, progress: bool = True,
-          command: str | None = None):
+          band_Hz=None, max_seconds: float | None = None, seed: int | None = None,
+          workers=None, progress: bool = True, command: str | None = None):
     """Choose the method (:func:`choose_method`) and return its Dataset."""
     method, reason = choose_method(scenario, accuracy, max_states=max_states)
+    return solve_with(method, reason, scenario, accuracy=accuracy, max_states=max_states,
+                      band_Hz=band_Hz, max_seconds=max_seconds, seed=seed, workers=workers,
+                      progress=progress, command=command)
+
+
+def solve_with(method: Method, reason: str, scenario: Scenario, *, accuracy: float,
+               max_states: int = DEFAULT_MAX_STATES, band_Hz=None,
+               max_seconds: float | None = None, seed: int | None = None, workers=None,
+               progress: bool = True, command: str | None = None):
+    """The Dataset of a method already chosen (:func:`choose_method`), with its reason.
+
+    Parameters
+    ----------
+    method : {"exact", "linear-noise", "monte-carlo"}
+    reason : str  The chooser's sentence, stored as ``method_reason``
+    scenario : Scenario
+    accuracy : float  Relative accuracy target [1]
+    max_states : int  Exact: the state limit [states]
+    band_Hz : (float, float), optional  The band the spectra must reach the accuracy in
+        (default ``[run] band_Hz``, else ``[readout] band_Hz``, else from the linear-noise
+        corners) [Hz]
+    max_seconds, seed, workers, progress : Monte Carlo only: as in :func:`grmc.simulate.run`
+    command : str, optional  Command line recorded in ``history``
+    """
+    readout_band = scenario.readout.band_Hz if scenario.readout is not None else None
+    if band_Hz is None and scenario.run.band_Hz is None and readout_band is not None:
+        band_Hz = tuple(map(float, readout_band))  # the band the readout is judged in
+    if method != "monte-carlo":
+        scenario, band = computed_window(scenario, accuracy, band_Hz)
+        pulse = scenario.start.excess_pairs > 0  # the transient is part of the answer
+        rb = scenario.readout.band_Hz if scenario.readout is not None else None
+        if band is not None and rb is not None:  # the spectra also span the readout band
+            band = (min(band[0], rb[0]), max(band[1], rb[1]))
     if method == "exact":
         return solve_exact(scenario, accuracy=accuracy, reason=reason, max_states=max_states,
-                           command=command)
+                           command=command, transient=pulse,
+                           freqs=None if band is None else band_frequencies(band))
     if method == "linear-noise":
-        return solve_linear_noise(scenario, accuracy=accuracy, reason=reason, command=command)
+        return solve_linear_noise(scenario, accuracy=accuracy, reason=reason, command=command,
+                                  transient=pulse)
     return solve_monte_carlo(scenario, accuracy, reason=reason, band_Hz=band_Hz,
-                             max_seconds=max_seconds, workers=workers, progress=progress,
-                             command=command)
+                             max_seconds=max_seconds, seed=seed, workers=workers,
+                             progress=progress, command=command)

@@ -58,6 +58,8 @@ __all__ = ["Vary", "parse_vary", "round_integers", "parts_dir", "sweep_points", 
 
 #: Seconds to wait for a Dask scheduler given by ``--scheduler`` before giving up.
 CONNECT_TIMEOUT_S = 2.0
+#: Accuracy the method chooser is given for each point when ``--accuracy`` is not [1].
+DEFAULT_ACCURACY = 0.05
 #: Largest exact state space a sweep point uses before it falls back to Monte Carlo.
 EXACT_STATE_LIMIT = 200_000
 #: Frequencies of the readout noise recorded per point unless ``--frequency`` is given [Hz].
@@ -199,12 +201,18 @@ def _lna_tau(model) -> tuple[np.ndarray, np.ndarray, np.ndarray, float]:
 
 
 def evaluate_point(scenario: Scenario, index: int, *, exact_limit: int = EXACT_STATE_LIMIT,
-                   noise_frequencies: tuple[float, ...] = DEFAULT_NOISE_FREQUENCIES) -> dict:
-    """Solve one sweep point: exact where small, Monte Carlo otherwise.
+                   noise_frequencies: tuple[float, ...] = DEFAULT_NOISE_FREQUENCIES,
+                   accuracy: float = DEFAULT_ACCURACY) -> dict:
+    """Solve one sweep point with the method :func:`grmc.solve.choose_method` picks for
+    ``accuracy``: exact where the state space fits, linear noise (the continuum mean plus its
+    next-order correction, the linear-noise variance and time constant) where its predicted
+    error is below accuracy/5 and no count is small, otherwise a Monte Carlo run of the
+    scenario's ``[run]`` (also where the exact solver refuses).
 
     Returns
     -------
-    dict of JSON-ready values: ``index``, ``method``, ``species`` and per species lists
+    dict of JSON-ready values: ``index``, ``method``, ``method_reason``, ``species``,
+    ``mean_next_order`` and per species lists
     ``mean``, ``mean_err``, ``var``, ``var_err``, ``tau``, ``tau_err``, ``continuum``,
     ``var_lna``, ``tau_lna``; ``intrinsic_density`` [cm^-3] and ``band_gap`` [eV] (NaN
     without a library material); with a ``[readout]`` the lists ``current_psd``,
@@ -216,58 +224,32 @@ def evaluate_point(scenario: Scenario, index: int, *, exact_limit: int = EXACT_S
     """
     from . import exact
     from .model import build_model
+    from .solve import choose_method
 
     model = build_model(scenario)
     ss, var_lna, tau_lna, f0 = _lna_tau(model)
     noise_f = np.asarray(noise_frequencies, dtype=float)
-    out: dict[str, Any] = {"index": index, "species": list(model.output_species)}
-    current = None
-    res = None
-    if scenario.population is None:  # a population needs its pixels simulated
-        try:
-            res = exact.solve(model, freqs=np.concatenate([[f0], noise_f]),
-                              max_states=exact_limit)
-        except exact.ExactRefusal:  # too many states, or too stiff: Monte Carlo instead
-            res = None
-    if res is not None:
-        if scenario.readout is not None:
-            from .readout import exact_current
-
-            current = exact_current(model, res).psd[1:]
-        if model.has_sublevels:  # the output species: a spread level's total beside its parts
-            s0 = np.real(np.einsum("iif->if", model.project_matrix(res.psd_matrix[:, :, :1])))
-            s0, var = s0[:, 0], np.diag(model.project_matrix(res.covariance))
-        else:
-            s0, var = res.psd[:, 0], res.var
-        with np.errstate(divide="ignore", invalid="ignore"):
-            tau = np.where(var > 0, s0 / (4 * var), np.nan)
-        zeros = np.zeros(len(model.output_species))
-        out.update(method="exact", n_states=int(res.n_states), mean=model.project(res.mean),
-                   mean_err=zeros, var=var, var_err=zeros, tau=tau, tau_err=zeros,
-                   probability_outside=float(res.mass_outside))
+    out: dict[str, Any] = {"index": index, "species": list(model.output_species),
+                           "mean_next_order": model.project(_next_order_delta(model))}
+    if scenario.population is not None:  # a population needs its pixels simulated
+        method, reason = "monte-carlo", "a population needs its pixels simulated"
     else:
-        from .cost import refuse_absurd, run_cost
-        from .simulate import run
-
-        refuse_absurd(scenario, run_cost(scenario))  # a point that could never finish
-        seed = _point_seed(scenario.run.seed, index)
-        ds = run(scenario, seed=seed, workers=1, progress=False)
-        var = ds["stationary_var"].values
-        # S(0): the sum of the fitted Lorentzian components' plateaus (NaN if unresolved)
-        comps = ds["plateau"].values
-        resolved = np.isfinite(comps).any(axis=1)
-        plateau = np.where(resolved, np.nansum(comps, axis=1), np.nan)
-        plateau_err = np.sqrt(np.nansum(ds["plateau_stderr"].values ** 2, axis=1))
-        with np.errstate(divide="ignore", invalid="ignore"):
-            tau = plateau / (4 * var)
-            tau_err = np.abs(tau) * np.hypot(plateau_err / plateau,
-                                             ds["stationary_var_stderr"].values / var)
-        out.update(method="monte carlo", seed=seed, trajectories=int(ds.attrs["trajectories"]),
-                   mean=ds["stationary_mean"].values, mean_err=ds["stationary_mean_stderr"].values,
-                   var=var, var_err=ds["stationary_var_stderr"].values, tau=tau, tau_err=tau_err)
-        out.update(_population_of(ds))
-        if "current_psd" in ds:
-            current = _log_interp(noise_f, ds["frequency"].values, ds["current_psd"].values)
+        method, reason = choose_method(scenario, accuracy, max_states=exact_limit)
+    out["method_reason"] = reason
+    current = None
+    if method == "linear-noise":
+        zeros = np.zeros(len(model.output_species))
+        out.update(method=method, mean=model.project(ss) + out["mean_next_order"],
+                   mean_err=zeros, var=var_lna, var_err=zeros, tau=tau_lna, tau_err=zeros)
+    if method == "exact":
+        try:
+            _exact_point(model, out, f0, noise_f, exact_limit)
+            current = out.pop("current")
+        except exact.ExactRefusal as exc:  # too stiff after all: Monte Carlo instead
+            method = "monte-carlo"
+            out["method_reason"] = f"{reason}, but the master equation was refused ({exc})"
+    if method == "monte-carlo":
+        current = _monte_carlo_point(scenario, index, out, noise_f)
     out.update(continuum=model.project(ss), var_lna=var_lna, tau_lna=tau_lna)
     mat = scenario.material
     gap = None if mat.record is None else mat.record.value("band_gap_eV")
@@ -276,7 +258,8 @@ def evaluate_point(scenario: Scenario, index: int, *, exact_limit: int = EXACT_S
     if scenario.readout is not None:
         from .readout import lna_current, photon_current_psd
 
-        out.update(current_psd=current, current_psd_lna=lna_current(model, noise_f).psd,
+        lna = lna_current(model, noise_f).psd
+        out.update(current_psd=lna if method == "linear-noise" else current, current_psd_lna=lna,
                    current_psd_photon=photon_current_psd(model, noise_f))
     return {k: (np.asarray(v, dtype=float).tolist() if isinstance(v, np.ndarray) else v)
             for k, v in out.items()}
@@ -301,6 +284,69 @@ def _population_of(ds) -> dict:
             "relative_noise_median": np.median(rel, axis=0)}
 
 
+def _monte_carlo_point(scenario: Scenario, index: int, out: dict, noise_f: np.ndarray):
+    """The Monte Carlo values of a sweep point (the scenario's fixed ``[run]``), into
+    ``out``; returns the readout spectrum at ``noise_f`` or None."""
+    from .cost import refuse_absurd, run_cost
+    from .simulate import run
+
+    refuse_absurd(scenario, run_cost(scenario))  # a point that could never finish
+    seed = _point_seed(scenario.run.seed, index)
+    ds = run(scenario, seed=seed, workers=1, progress=False)
+    var = ds["stationary_var"].values
+    # S(0): the sum of the fitted Lorentzian components' plateaus (NaN if unresolved)
+    comps = ds["plateau"].values
+    resolved = np.isfinite(comps).any(axis=1)
+    plateau = np.where(resolved, np.nansum(comps, axis=1), np.nan)
+    plateau_err = np.sqrt(np.nansum(ds["plateau_stderr"].values ** 2, axis=1))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        tau = plateau / (4 * var)
+        tau_err = np.abs(tau) * np.hypot(plateau_err / plateau,
+                                         ds["stationary_var_stderr"].values / var)
+    out.update(method="monte-carlo", seed=seed, trajectories=int(ds.attrs["trajectories"]),
+               mean=ds["stationary_mean"].values, mean_err=ds["stationary_mean_stderr"].values,
+               var=var, var_err=ds["stationary_var_stderr"].values, tau=tau, tau_err=tau_err)
+    out.update(_population_of(ds))
+    if "current_psd" in ds:
+        return _log_interp(noise_f, ds["frequency"].values, ds["current_psd"].values)
+    return None
+
+
+def _next_order_delta(model) -> np.ndarray:
+    """The predicted next-order correction of each mean (NaN without a steady state)."""
+    from .continuum import ContinuumError
+    from .next_order import mean_correction
+
+    try:
+        return np.asarray(mean_correction(model), dtype=float)
+    except ContinuumError:
+        return np.full(model.n_species, np.nan)
+
+
+def _exact_point(model, out: dict, f0: float, noise_f: np.ndarray, limit: int) -> None:
+    """The master-equation values of a sweep point, into ``out`` (``current``: the readout
+    spectrum at ``noise_f`` or None)."""
+    from . import exact
+
+    res = exact.solve(model, freqs=np.concatenate([[f0], noise_f]), max_states=limit)
+    current = None
+    if model.scenario.readout is not None:
+        from .readout import exact_current
+
+        current = exact_current(model, res).psd[1:]
+    if model.has_sublevels:  # the output species: a spread level's total beside its parts
+        s0 = np.real(np.einsum("iif->if", model.project_matrix(res.psd_matrix[:, :, :1])))
+        s0, var = s0[:, 0], np.diag(model.project_matrix(res.covariance))
+    else:
+        s0, var = res.psd[:, 0], res.var
+    with np.errstate(divide="ignore", invalid="ignore"):
+        tau = np.where(var > 0, s0 / (4 * var), np.nan)
+    zeros = np.zeros(len(model.output_species))
+    out.update(method="exact", n_states=int(res.n_states), mean=model.project(res.mean),
+               mean_err=zeros, var=var, var_err=zeros, tau=tau, tau_err=zeros,
+               probability_outside=float(res.mass_outside), current=current)
+
+
 def _log_interp(f: np.ndarray, freqs: np.ndarray, psd: np.ndarray) -> np.ndarray:
     """A positive spectrum at ``f``, interpolated in log-log; NaN outside its frequencies."""
     ok = (freqs > 0) & (psd > 0)
@@ -310,16 +356,20 @@ def _log_interp(f: np.ndarray, freqs: np.ndarray, psd: np.ndarray) -> np.ndarray
 
 
 def _evaluate_task(scenario: Scenario, assignment: dict, index: int,
-                   noise_frequencies: tuple[float, ...] = DEFAULT_NOISE_FREQUENCIES) -> dict:
+                   noise_frequencies: tuple[float, ...] = DEFAULT_NOISE_FREQUENCIES,
+                   accuracy: float = DEFAULT_ACCURACY) -> dict:
     """One Dask task: build the point's scenario and solve it."""
     res = evaluate_point(point_scenario(scenario, assignment), index,
-                         noise_frequencies=noise_frequencies)
+                         noise_frequencies=noise_frequencies, accuracy=accuracy)
     res["assignment"] = assignment
     return res
 
 
-def _signature(scenario: Scenario, varies: list[Vary], noise_f: tuple[float, ...]) -> str:
+def _signature(scenario: Scenario, varies: list[Vary], noise_f: tuple[float, ...],
+               accuracy: float = DEFAULT_ACCURACY) -> str:
     text = scenario.text + "\n" + json.dumps([dataclasses.asdict(v) for v in varies])
+    if accuracy != DEFAULT_ACCURACY:
+        text += f"\naccuracy {accuracy!r}"
     if noise_f != DEFAULT_NOISE_FREQUENCIES:  # (the default keeps older signatures)
         text += "\n" + json.dumps(noise_f)
     return hashlib.sha256(text.encode()).hexdigest()[:16]
@@ -420,7 +470,8 @@ def run_sweep(scenario: Scenario, varies: list[Vary], out: str | Path, *,
               scheduler: str | None = None, resume: bool = False, workers: int | None = None,
               command: str | None = None, max_points: int | None = None,
               noise_frequencies: tuple[float, ...] | None = None,
-              on_point: Callable[[dict], None] | None = None) -> Path | None:
+              on_point: Callable[[dict], None] | None = None,
+              accuracy: float = DEFAULT_ACCURACY) -> Path | None:
     """Run every sweep point on Dask and write the stacked file.
 
     Parameters
@@ -438,6 +489,7 @@ def run_sweep(scenario: Scenario, varies: list[Vary], out: str | Path, *,
     noise_frequencies : tuple of float, optional  Frequencies of the readout noise recorded
         per point (default :data:`DEFAULT_NOISE_FREQUENCIES`) [Hz]
     on_point : callable, optional  Called with each point's result as it finishes
+    accuracy : float  The accuracy the method chooser is given per point [1]
 
     Returns
     -------
@@ -458,7 +510,7 @@ def run_sweep(scenario: Scenario, varies: list[Vary], out: str | Path, *,
         point_scenario(scenario, assignment)
     parts = parts_dir(out)
     fresh = not parts.exists()
-    done = _open_parts(parts, _signature(scenario, varies, noise_f), len(points), resume, out)
+    done = _open_parts(parts, _signature(scenario, varies, noise_f, accuracy), len(points), resume, out)
     todo = [i for i in range(len(points)) if i not in done]
     if max_points is not None:
         todo = todo[:max_points]
@@ -473,7 +525,7 @@ def run_sweep(scenario: Scenario, varies: list[Vary], out: str | Path, *,
             raise
         try:
             futures = [client.submit(_evaluate_task, scenario, points[i], i, noise_f,
-                                     pure=False) for i in todo]
+                                     accuracy, pure=False) for i in todo]
             for fut in as_completed(futures):
                 try:
                     res = fut.result()
@@ -538,7 +590,11 @@ def assemble(scenario: Scenario, varies: list[Vary], results: list[dict], *,
         "deviation_tau": (sw, dev["tau"][0]),
         "deviation_tau_stderr": (sw, dev["tau"][1]),
         "method": (("sweep",), np.array([r["method"] for r in results], dtype=object)),
+        "method_reason": (("sweep",), np.array([r.get("method_reason", "")
+                                                for r in results], dtype=object)),
     }
+    if all("mean_next_order" in r for r in results):
+        variables["mean_next_order"] = (sw, stack("mean_next_order"))
     variables["intrinsic_density"] = (("sweep",), stack("intrinsic_density"))
     gaps = stack("band_gap")
     if np.isfinite(gaps).any():  # a library material
@@ -573,8 +629,10 @@ def assemble(scenario: Scenario, varies: list[Vary], results: list[dict], *,
     ds = finish(ds, title=scenario.title, scenario_toml=scenario.text, command=command,
                 kind="sweep", swept_keys=" ".join(v.key for v in varies),
                 deviation_threshold=DEVIATION_THRESHOLD, seed=int(scenario.run.seed))
-    for name in ("method",):
-        ds[name].attrs.update({"long_name": "exact or monte carlo", "units": "1"})
+    ds["method"].attrs.update({"long_name": "method chosen for the point: exact, "
+                               "linear-noise or monte-carlo", "units": "1"})
+    ds["method_reason"].attrs.update({"long_name": "why the method was chosen, with its "
+                                      "numbers", "units": "1"})
     return ds
 
 

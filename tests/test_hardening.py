@@ -394,14 +394,15 @@ def test_every_exported_name_exists():
 
 
 def test_sweep_point_with_an_absurd_monte_carlo_cost_is_refused():
-    """A point too large for the exact solver falls back to Monte Carlo; when that run could
-    never finish (a 1e300 s window), the point is refused naming the key, not started."""
+    """A point too large for the exact solver, and asked for an accuracy (1e-9) the linear
+    noise cannot promise, falls back to Monte Carlo; when that run could never finish (a
+    1e300 s window), the point is refused naming the key, not started."""
     from grmc.scenario import ScenarioError, load_scenario
     from grmc.sweep import evaluate_point
 
     scen = load_scenario(text=BASE.replace("duration_s = 1.0e-7", "duration_s = 1e300"))
     with pytest.raises(ScenarioError, match=r"\[run\] duration_s"):
-        evaluate_point(scen, 0, exact_limit=1)
+        evaluate_point(scen, 0, exact_limit=1, accuracy=1e-9)
 
 
 def test_scenario_error_survives_pickling():
@@ -423,10 +424,10 @@ def test_sweep_with_a_point_that_could_never_finish(tmp_path, capfd):
                   .replace("intrinsic_density_cm3 = 1.0e10", "intrinsic_density_cm3 = 1.0e16"))
     out = tmp_path / "sw.nc"
     # about 1e7 electrons beside 1e9 holes: the electron count alone spans far more states
-    # than the exact solver's limit, so the points fall back to Monte Carlo, which could
-    # never finish
+    # than the exact solver's limit, and at an accuracy of 1e-9 the linear noise cannot
+    # answer either, so the points fall back to Monte Carlo, which could never finish
     assert main(["sweep", str(path), "--vary", "volume.volume_cm3=1e-8:2e-8:2",
-                 "--workers", "1", "-o", str(out)]) == 2
+                 "--accuracy", "1e-9", "--workers", "1", "-o", str(out)]) == 2
     captured = capfd.readouterr()
     err = _one_line(captured.err)
     assert "[run] duration_s" in err and "volume.volume_cm3=" in err

@@ -119,3 +119,182 @@ def test_linear_noise_covariance_grows_as_a_birth_death_from_a_sharp_start():
     np.testing.assert_allclose(var, expected, rtol=1e-9, atol=1e-12)
     # and the exact (Poisson) stationary variance equals it at long times
     assert exact.solve(model).var[0] == pytest.approx(lna.covariance[0, 0], rel=1e-9)
+
+
+# ------------------------------------------------------------------ the size ladder
+LADDER = "scenarios/size_ladder.toml"
+
+
+def ladder(volume: float):
+    from grmc.sweep import point_scenario
+
+    return point_scenario(grmc.load_scenario(LADDER), {"volume.volume_cm3": volume})
+
+
+def test_ladder_small_end_exact_agrees_with_a_fixed_monte_carlo_run():
+    """1e-16 cm^3 (one electron, a hundred holes): the master equation is chosen; its mean
+    and variance of every count agree with a fixed Monte Carlo run (seed 5, 16 trajectories)
+    within 3 of the run's standard errors (tolerance from the estimator's standard error)
+    and the run's 95 % half-width is inside the 5 % target where it resolves the value."""
+    from grmc.simulate import run
+    from grmc.solve import solve
+
+    scen = ladder(1.0e-16)
+    ds = solve(scen, 0.05, progress=False)
+    assert ds.attrs["method"] == "exact"
+    mc = run(scen, trajectories=16, seed=5, progress=False, workers=1)
+    for name in ("stationary_mean", "stationary_var"):
+        ref, err = mc[name].values, mc[name + "_stderr"].values
+        for s in range(2):  # electrons, holes
+            assert abs(float(ds[name][s]) - ref[s]) <= 3.0 * err[s], (name, s)
+
+
+def test_ladder_middle_monte_carlo_agrees_with_the_master_equation():
+    """1e-16 cm^3 with the state limit at 100: the chooser runs Monte Carlo (the reason
+    names the small trapped count); its means and variances to +-20 % (fast variant of the
+    5 % ladder target) agree with the master equation, solved independently at the same
+    rung, within 3 standard errors of the run (tolerance from the estimator's standard
+    error)."""
+    from grmc.solve import choose_method, solve
+
+    scen = ladder(1.0e-16)
+    method, reason = choose_method(scen, 0.2, max_states=100)
+    assert method == "monte-carlo" and "trapped:midgap" in reason
+    ds = solve(scen, 0.2, max_states=100, seed=3, workers=1, progress=False)
+    assert ds.attrs["method"] == "monte-carlo" and ds.attrs["accuracy_target"] == 0.2
+    assert "mean_next_order" in ds
+    ref = exact.solve(grmc.build_model(scen))
+    for name, exact_value in (("stationary_mean", ref.mean), ("stationary_var", ref.var)):
+        for s in range(2):
+            err = float(ds[name + "_stderr"][s])
+            assert abs(float(ds[name][s]) - exact_value[s]) <= 3.0 * err, (name, s)
+
+
+def test_ladder_large_end_linear_noise_against_scipy():
+    """1e-12 cm^3 (ten thousand electrons, a million holes): linear noise, and the reason
+    names the predicted error.  Reference computed here with scipy, independent of
+    grmc.continuum: the steady state by integrating the rate equations (solve_ivp, Radau)
+    and the covariance from the Lyapunov equation A C + C A^T + D = 0 (van Kampen 2007,
+    ch. X) in the coordinates left after eliminating the holes through the charge, with A
+    by central differences of the model's rates; the answer agrees to the 5 % target (and
+    in fact to 1e-4)."""
+    import scipy.integrate
+    import scipy.linalg
+
+    from grmc.solve import choose_method, solve
+
+    scen = ladder(1.0e-12)
+    method, reason = choose_method(scen, 0.05)
+    assert method == "linear-noise" and "predicted next-order error" in reason
+    ds = solve(scen, 0.05)
+    model = grmc.build_model(scen)
+    nu = np.asarray(model.stoich, dtype=float)          # (channels, species)
+    w = np.asarray(model.charge_weights, dtype=float)   # holes have weight -1
+
+    def full(y):  # electrons, trapped -> all three counts at the model's charge
+        return np.array([y[0], (w[0] * y[0] + w[2] * y[1] - model.charge) / -w[1], y[1]])
+
+    def rhs(t, y):
+        return (nu.T @ model.rates(full(y)))[[0, 2]]
+
+    x0 = np.asarray(ds["steady_continuum"].values, dtype=float)
+    sol = scipy.integrate.solve_ivp(rhs, (0.0, 1.0e-6), x0[[0, 2]] * 1.1, method="Radau",
+                                    rtol=1e-10, atol=1e-6)
+    y = sol.y[:, -1]
+    assert np.allclose(full(y), ds["stationary_mean"].values, rtol=1e-4)
+    h = 1e-4 * np.maximum(y, 1.0)
+    a = np.column_stack([(rhs(0, y + h[j] * np.eye(2)[j]) - rhs(0, y - h[j] * np.eye(2)[j]))
+                         / (2 * h[j]) for j in range(2)])
+    red = nu[:, [0, 2]]
+    d = red.T @ (model.rates(full(y))[:, None] * red)
+    c = scipy.linalg.solve_continuous_lyapunov(a, -d)
+    got = ds["stationary_var"].values
+    assert got[0] == pytest.approx(c[0, 0], rel=1e-4)
+    assert got[2] == pytest.approx(c[1, 1], rel=1e-4)
+    for name in ("psd_band", "psd_band_low", "current_psd_band", "current_noise_rms",
+                 "mean_next_order"):
+        assert name in ds, name
+    np.testing.assert_array_equal(ds["psd_band_low"].values, ds["psd_band"].values)
+
+
+# ------------------------------------------------------------------ grmc solve (CLI)
+def _cli(*args):
+    import subprocess
+    import sys
+
+    return subprocess.run([sys.executable, "-m", "grmc", *args], capture_output=True,
+                          text=True)
+
+
+def test_cli_solve_writes_the_method_and_its_reason(tmp_path):
+    """The method is printed on one line before the table; the file carries the method,
+    its reason and the target, the band-averaged spectra (computed: low = high, said in the
+    variable's comment) and the next-order correction; plot and export read it (common
+    practice: the output contract of docs/file-format.md)."""
+    out = tmp_path / "ladder.nc"
+    proc = _cli("solve", LADDER, "--accuracy", "0.05", "--set", "volume.volume_cm3=1e-18",
+                "-o", str(out))
+    assert proc.returncode == 0, proc.stderr
+    first = proc.stdout.splitlines()[0]
+    assert first.startswith("method: exact, because the master equation fits")
+    ds = load(out)
+    assert ds.attrs["method"] == "exact" and ds.attrs["accuracy_target"] == 0.05
+    assert ds.attrs["method_reason"] in first
+    assert ds.attrs["volume_cm3"] == 1.0e-18
+    assert "no sampling interval" in ds["psd_band_high"].attrs["comment"]
+    for name in ("mean_next_order", "frequency_band", "current_noise_rms"):
+        assert name in ds.variables, name
+    plot = _cli("plot", str(out), "-o", str(tmp_path / "fig"))
+    assert plot.returncode == 0, plot.stderr
+    export = _cli("export", str(out), "--format", "spice", "-o", str(tmp_path / "n.cir"))
+    assert export.returncode == 0, export.stderr
+    assert (tmp_path / "n.cir").exists()
+
+
+@pytest.mark.parametrize("args, option", [
+    (("--accuracy", "0"), "--accuracy"),
+    (("--accuracy", "1.5"), "--accuracy"),
+    (("--accuracy", "0.05", "--band", "1e6:1e3"), "--band"),
+    (("--accuracy", "0.05", "--band", "1e3:1e3"), "--band"),
+    (("--accuracy", "0.05", "--set", "volume.volume_cm3"), "--set"),
+    (("--accuracy", "0.05", "--set", "volume.nothing=1"), "nothing"),
+])
+def test_cli_solve_bad_values_exit_2_naming_the_option(tmp_path, args, option):
+    """Bad input: one line on stderr naming the option, exit status 2, no file (common
+    practice; README, exit status)."""
+    out = tmp_path / "bad.nc"
+    proc = _cli("solve", LADDER, *args, "-o", str(out))
+    assert proc.returncode == 2
+    lines = proc.stderr.strip().splitlines()
+    assert len(lines) == 1 and option in lines[0], proc.stderr
+    assert not out.exists()
+
+
+# ------------------------------------------------------------------ the chooser in sweeps
+def test_sweep_points_use_the_chooser_and_the_figure_draws_the_prediction():
+    """Two sweep points of the pair reaction: ten pairs (the master equation fits) and a
+    million (linear noise, its mean the continuum plus the -1/4 correction of Darvey, Ninham
+    & Staff 1966's large-count limit); the method and the reason are recorded per point,
+    and the validity figure draws the predicted deviation |mean_next_order / continuum|
+    beside the measured one."""
+    from grmc.plotting import plot_validity
+    from grmc.sweep import Vary, assemble, evaluate_point, point_scenario
+
+    base = grmc.load_scenario(text=pair_text(10.0))
+    results = []
+    for i, vol in enumerate((1.0e-15, 1.0e-10)):
+        res = evaluate_point(point_scenario(base, {"volume.volume_cm3": vol}), i)
+        res["assignment"] = {"volume.volume_cm3": vol}
+        results.append(res)
+    assert [r["method"] for r in results] == ["exact", "linear-noise"]
+    assert "fits" in results[0]["method_reason"]
+    assert "predicted next-order error" in results[1]["method_reason"]
+    h = results[1]["species"].index("holes")
+    assert results[1]["mean"][h] == pytest.approx(1.0e6 - 0.25, rel=1e-12)
+    vary = Vary("volume.volume_cm3", (1.0e-15, 1.0e-10))
+    ds = assemble(base, [vary], results)
+    assert list(ds["method"].values) == ["exact", "linear-noise"]
+    assert ds["mean_next_order"].shape == (2, 2)  # sweep, species (electrons, holes)
+    ax = plot_validity(ds, "mean")
+    labels = [line.get_label() for line in ax.get_lines()]
+    assert any("predicted" in lab for lab in labels), labels

@@ -93,7 +93,7 @@ def test_point_falls_back_to_monte_carlo():
                                                                "trajectories = 32")),
                           {"volume.volume_cm3": 2.0e-10})
     res = evaluate_point(scen, 0, exact_limit=5)
-    assert res["method"] == "monte carlo"
+    assert res["method"] == "monte-carlo"
     h = res["species"].index("holes")
     mean_h, _ = pair_reaction_exact(4.0, 0)
     assert abs(res["mean"][h] - mean_h) < 4 * res["mean_err"][h]
