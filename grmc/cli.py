@@ -441,11 +441,18 @@ def cmd_solve(args) -> int:
     out = _output_file(args.output, _default_output(args.scenario, "_solve"))
     method, reason = choose_method(scenario, target["accuracy"], max_states=args.max_states)
     print(f"method: {method}, because {reason}", flush=True)
-    if method == "monte-carlo":
+    if method != "monte-carlo":
+        ds = solve_with(method, reason, scenario, seed=args.seed, workers=args.workers,
+                        max_states=args.max_states, command=args.command_line, **target)
+        save(ds, out)
+    else:
         _refuse_absurd_run(scenario, None, args.workers)
-    ds = solve_with(method, reason, scenario, seed=args.seed, workers=args.workers,
-                    max_states=args.max_states, command=args.command_line, **target)
-    save(ds, out)
+        with _chunk_runner(args, out) as runner:  # --scheduler, --resume
+            ds = solve_with(method, reason, scenario, seed=args.seed, workers=args.workers,
+                            max_states=args.max_states, command=args.command_line,
+                            runner=runner, **target)
+            save(ds, out)
+            runner.finish()
     print(format_solve_table(ds))
     print(f"wrote {out}")
     return EXIT_OK
@@ -552,6 +559,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--set", action="append", metavar="KEY=NUMBER",
                    help="set section.key (or traps.<label>.key) of the scenario, e.g. "
                         "volume.volume_cm3=1e-18; repeatable")
+    _scale_out_options(p)
     p.set_defaults(func=cmd_solve)
 
     p = sub.add_parser("sweep", help="a parameter sweep (exact or Monte Carlo per point)")

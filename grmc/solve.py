@@ -258,12 +258,14 @@ def solve_linear_noise(scenario: Scenario, *, accuracy: float | None = None, rea
 
 def solve_monte_carlo(scenario: Scenario, accuracy: float, *, reason: str = "",
                       band_Hz=None, max_seconds: float | None = None, seed: int | None = None,
-                      workers=None, progress: bool | None = True, command: str | None = None):
-    """The adaptive Monte Carlo run to ``accuracy``, with the method and its reason."""
+                      workers=None, progress: bool | None = True, command: str | None = None,
+                      runner=None):
+    """The adaptive Monte Carlo run to ``accuracy``, with the method and its reason
+    (``runner``: where the chunks run, :mod:`grmc.runner`; default local threads)."""
     from .simulate import run
 
     ds = run(scenario, accuracy=accuracy, band_Hz=band_Hz, max_seconds=max_seconds,
-             seed=seed, workers=workers, progress=progress, command=command)
+             seed=seed, workers=workers, progress=progress, command=command, runner=runner)
     if "mean_next_order" not in ds:
         from .dataset import VARIABLES
 
@@ -324,7 +326,7 @@ def solve(scenario: Scenario, accuracy: float, *, max_states: int = DEFAULT_MAX_
 def solve_with(method: Method, reason: str, scenario: Scenario, *, accuracy: float,
                max_states: int = DEFAULT_MAX_STATES, band_Hz=None,
                max_seconds: float | None = None, seed: int | None = None, workers=None,
-               progress: bool = True, command: str | None = None):
+               progress: bool = True, command: str | None = None, runner=None):
     """The Dataset of a method already chosen (:func:`choose_method`), with its reason.
 
     Parameters
@@ -337,7 +339,8 @@ def solve_with(method: Method, reason: str, scenario: Scenario, *, accuracy: flo
     band_Hz : (float, float), optional  The band the spectra must reach the accuracy in
         (default ``[run] band_Hz``, else ``[readout] band_Hz``, else from the linear-noise
         corners) [Hz]
-    max_seconds, seed, workers, progress : Monte Carlo only: as in :func:`grmc.simulate.run`
+    max_seconds, seed, workers, progress, runner : Monte Carlo only: as in
+        :func:`grmc.simulate.run`
     command : str, optional  Command line recorded in ``history``
     """
     readout_band = scenario.readout.band_Hz if scenario.readout is not None else None
@@ -358,4 +361,4 @@ def solve_with(method: Method, reason: str, scenario: Scenario, *, accuracy: flo
                                   transient=pulse)
     return solve_monte_carlo(scenario, accuracy, reason=reason, band_Hz=band_Hz,
                              max_seconds=max_seconds, seed=seed, workers=workers,
-                             progress=progress, command=command)
+                             progress=progress, command=command, runner=runner)

@@ -235,3 +235,27 @@ def test_adaptive_rounds_on_the_cluster_stop_where_the_local_run_stops(cluster):
         assert remote.attrs[key] == local.attrs[key], key
     assert runner.computed == int(local.attrs["trajectories"]) // 4
     _same_data(remote, local)
+
+
+def test_grmc_solve_on_the_cluster_gives_the_local_data(cluster, tmp_path):
+    """`grmc solve --scheduler`: when the chooser runs Monte Carlo (the ladder's 1e-16 cm^3
+    rung with the master equation limited to 100 states, as in tests/test_solve.py), the
+    rounds' chunks go to the cluster and the file equals a local solve with the same seed."""
+    from test_solve import LADDER, ladder
+
+    from grmc.solve import solve
+
+    lc, _ = cluster
+    scen = ladder(1.0e-16)
+    out = tmp_path / "rung_solve.nc"
+    assert main(["solve", str(LADDER), "--set", "volume.volume_cm3=1e-16", "--accuracy", "0.2",
+                 "--max-states", "100", "--seed", "3", "--scheduler", lc.scheduler_address,
+                 "-o", str(out)]) == 0
+    remote = load(out)
+    local = solve(scen, 0.2, max_states=100, seed=3, workers=1, progress=False)
+    assert remote.attrs["method"] == "monte-carlo"
+    for key in ("rounds", "trajectories", "accuracy_reached"):
+        assert remote.attrs[key] == local.attrs[key], key
+    for name in ("stationary_mean", "stationary_var", "psd_band", "psd"):
+        np.testing.assert_array_equal(remote[name].values, local[name].values, err_msg=name)
+    assert not parts_dir(out).exists()
