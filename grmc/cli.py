@@ -478,6 +478,31 @@ def _scale_out_options(p: argparse.ArgumentParser) -> None:
                         "<OUT>.parts/")
 
 
+def _add_solve(sub) -> None:
+    """The ``grmc solve`` subcommand's options."""
+    p = sub.add_parser("solve", help="the answer to a stated accuracy at any volume: the "
+                       "method (exact, linear noise or Monte Carlo) chosen and justified")
+    p.add_argument("scenario", help="scenario file (TOML)")
+    p.add_argument("--accuracy", metavar="REL", required=True,
+                   help="relative accuracy wanted of the means, variances and spectra "
+                        "(0 < REL < 1, e.g. 0.05)")
+    p.add_argument("-o", "--output", help="output file (default outputs/<stem>_solve.nc)")
+    p.add_argument("--max-states", type=_positive_int, default=200_000, metavar="N",
+                   help="largest state space given to the master equation (default 200000)")
+    p.add_argument("--band", metavar="F1:F2",
+                   help="Monte Carlo: band [Hz] the spectra must reach the accuracy in")
+    p.add_argument("--max-seconds", metavar="S",
+                   help="Monte Carlo: time budget of the rounds (default 600)")
+    p.add_argument("--seed", type=_nonneg_int, help="Monte Carlo: override [run] seed")
+    p.add_argument("--workers", type=_positive_int, help="Monte Carlo: threads (default: "
+                   "all cores)")
+    p.add_argument("--set", action="append", metavar="KEY=NUMBER",
+                   help="set section.key (or traps.<label>.key) of the scenario, e.g. "
+                        "volume.volume_cm3=1e-18; repeatable")
+    _scale_out_options(p)
+    p.set_defaults(func=cmd_solve)
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = _Parser(
         prog="grmc",
@@ -540,27 +565,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("-o", "--output", help="output file (default outputs/<stem>_exact.nc)")
     p.set_defaults(func=cmd_exact)
 
-    p = sub.add_parser("solve", help="the answer to a stated accuracy at any volume: the "
-                       "method (exact, linear noise or Monte Carlo) chosen and justified")
-    p.add_argument("scenario", help="scenario file (TOML)")
-    p.add_argument("--accuracy", metavar="REL", required=True,
-                   help="relative accuracy wanted of the means, variances and spectra "
-                        "(0 < REL < 1, e.g. 0.05)")
-    p.add_argument("-o", "--output", help="output file (default outputs/<stem>_solve.nc)")
-    p.add_argument("--max-states", type=_positive_int, default=200_000, metavar="N",
-                   help="largest state space given to the master equation (default 200000)")
-    p.add_argument("--band", metavar="F1:F2",
-                   help="Monte Carlo: band [Hz] the spectra must reach the accuracy in")
-    p.add_argument("--max-seconds", metavar="S",
-                   help="Monte Carlo: time budget of the rounds (default 600)")
-    p.add_argument("--seed", type=_nonneg_int, help="Monte Carlo: override [run] seed")
-    p.add_argument("--workers", type=_positive_int, help="Monte Carlo: threads (default: "
-                   "all cores)")
-    p.add_argument("--set", action="append", metavar="KEY=NUMBER",
-                   help="set section.key (or traps.<label>.key) of the scenario, e.g. "
-                        "volume.volume_cm3=1e-18; repeatable")
-    _scale_out_options(p)
-    p.set_defaults(func=cmd_solve)
+    _add_solve(sub)
 
     p = sub.add_parser("sweep", help="a parameter sweep (exact or Monte Carlo per point)")
     p.add_argument("scenario", help="scenario file (TOML)")
