@@ -53,7 +53,7 @@ and its one-sided Laplace-Fourier transform is a resolvent:
     F_ab(w) = int_0^inf C_ab(tau) exp(-i w tau) dtau = (pi o y^a)^T (i w I - Q)^-1 y^b.
 
 The one-sided (cross) spectral density, in the convention of the linear-noise spectral matrix
-``2 (i w - A)^-1 D (-i w - A^T)^-1`` (docs/physics.md), is
+``2 (i w - A)^-1 D (-i w - A^T)^-1`` (docs/physics-notes.md), is
 
     S_ab(f) = 2 int_-inf^inf E[y^a(t + tau) y^b(t)] exp(-i w tau) dtau
             = 2 [F_ba(w) + conj(F_ab(w))],         w = 2 pi f,

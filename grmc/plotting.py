@@ -289,7 +289,7 @@ def plot_histogram(ds: xr.Dataset | Result, species: str, ax: Axes | None = None
     Notes
     -----
     A one-variable birth-death process with constant generation and first-order loss has a
-    Poisson stationary law (var = mean, docs/physics.md); departures show the correlations the
+    Poisson stationary law (var = mean, docs/physics-notes.md); departures show the correlations the
     other channels bring (e.g. a pair constraint narrows the law, Darvey, Ninham & Staff,
     J. Chem. Phys. 45, 2145, 1966).
     """

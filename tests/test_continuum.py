@@ -14,7 +14,7 @@ Si C_n, C_p = 2.8e-31, 9.9e-32 cm^6/s: Dziewior & Schmid, Appl. Phys. Lett. 31, 
 GaAs n_i = 2.1e6 cm^-3, B = 7.2e-10 cm^3/s: Levinshtein, Rumyantsev & Shur, Handbook Series
 on Semiconductor Parameters vol. 1 (1996).
 Capture coefficient c = sigma v_th = 1e-15 cm^2 x 1e7 cm/s = 1e-8 cm^3/s (v_th about 1e7 cm/s,
-common practice; sigma = 1e-15 cm^2 is the example value of docs/physics.md).
+common practice; sigma = 1e-15 cm^2 is the example value of docs/physics-notes.md).
 """
 
 from __future__ import annotations
@@ -422,7 +422,7 @@ def test_lna_pair_channels_equal_variances():
 
 def test_lna_parseval():
     """Parseval: the integral of the one-sided spectral matrix over f in (0, inf) equals the
-    covariance (docs/physics.md).  Integrated in u = ln f over 12 decades around the corner
+    covariance (docs/physics-notes.md).  Integrated in u = ln f over 12 decades around the corner
     frequencies, with the tails added analytically (flat below, 1/f^2 above); the tails'
     error is below 1e-12 and quad runs at epsrel 1e-10, so 1e-8 is checked."""
     model = make_model(NA=1e16, V=1e-14, G=1e21, traps=(

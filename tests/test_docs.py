@@ -160,9 +160,9 @@ def test_every_markdown_file_mentioned_is_in_the_repository():
 
 
 def test_links_and_quoted_sections_resolve():
-    """Links between pages (``[the sources](physics.md#sources)``) reach an existing page and
+    """Links between pages (``[the sources](physics-notes.md#sources)``) reach an existing page and
     heading, and a quoted section title after a page name
-    (``docs/physics.md "One-level G-R noise"``) is a heading of that page."""
+    (``docs/physics-notes.md "One-level G-R noise"``) is a heading of that page."""
     bad = []
     for path in _sources():
         text = path.read_text(errors="replace")
@@ -189,4 +189,4 @@ def test_links_and_quoted_sections_resolve():
 def test_cited_physics_sections_exist(title):
     """Docstrings and tests cite these physics sections by title; they must stay headings (a
     renamed heading would silently orphan the citations the previous test finds)."""
-    assert title in _headings(DOCS / "physics.md")
+    assert title in _headings(DOCS / "physics-notes.md")

@@ -338,7 +338,7 @@ def test_bins_agree_with_samples_and_integrals(small):
 
 # ------------------------------------------------------------------------------ invariants
 def test_charge_conservation_and_trap_bounds(small):
-    """docs/physics.md: every event keeps N_e - N_h + M = D - A (acceptor-like level) at every
+    """docs/physics-notes.md: every event keeps N_e - N_h + M = D - A (acceptor-like level) at every
     sample, in every bin average and at the end; 0 <= M <= T."""
     m, arr, x0 = small
     excess = np.array([4, 4, 0])
@@ -425,7 +425,7 @@ def _check(est: np.ndarray, ref: float) -> None:
 
 
 def test_birth_death_stationary_law():
-    """Linear birth-death process (docs/physics.md): electrons in a heavily p-type box (A = 1e5)
+    """Linear birth-death process (docs/physics-notes.md): electrons in a heavily p-type box (A = 1e5)
     with radiative recombination and optical generation only.  Birth g = (G + B n_i^2) V,
     death k N_e (N_e + A) with k = B / V; detailed balance gives the exact law
     P(n) ~ lambda^n / (n! (n + A)!), lambda = g / k (Darvey, Ninham & Staff, J. Chem. Phys.
@@ -496,7 +496,7 @@ volume_cm3 = 1.0e-15
 
 
 def test_dark_trap_equilibrium_law():
-    """Detailed balance in the dark (docs/physics.md): the stationary law of (N_e, N_h, M) is
+    """Detailed balance in the dark (docs/physics-notes.md): the stationary law of (N_e, N_h, M) is
     lambda^N_e / N_e! * lambda^N_h / N_h! * C(T, M) r^M on the neutral states, lambda = n_i V,
     r = n_i / n_1 = exp(-E_t / kT) (each forward/reverse pair -- radiative/thermal, Auger/
     impact, capture/emission -- balances with these weights; e.g. Shockley & Read, Phys. Rev.

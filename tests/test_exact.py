@@ -196,7 +196,7 @@ def test_pair_reaction_exact_is_finite_for_large_lambda():
 
 def test_dark_law_is_the_product_law_restricted_to_the_charge():
     """Equilibrium law with radiative, both Auger channels and two trap levels (acceptor- and
-    donor-like), from detailed balance (derived here; docs/physics.md states the product form).
+    donor-like), from detailed balance (derived here; docs/physics-notes.md states the product form).
 
     For pi(x) = (mu_e^N_e / N_e!) (mu_h^N_h / N_h!) prod_k C(T_k, M_k) theta_k^M_k restricted to
     the charge shell, each channel pair balances:
@@ -252,7 +252,7 @@ def test_dark_law_is_the_product_law_restricted_to_the_charge():
 
 def test_dark_solution_satisfies_detailed_balance():
     """In the dark, pi_i Q_ik = pi_k Q_ki for every pair of states (detailed balance), and each
-    reverse pair of channels fires equally often on average (docs/physics.md); to 1e-10 of the
+    reverse pair of channels fires equally often on average (docs/physics-notes.md); to 1e-10 of the
     total flux."""
     model = model_of(ni=3e15, radiative=1e-10, auger_n=1e-25, auger_p=5e-26, acceptors=1e15,
                      traps=[trap("a", 4, 0.1, "acceptor", 1e-9, 2e-9)])
@@ -297,7 +297,7 @@ def test_single_trap_in_finite_reservoir_tends_to_machlup():
     """One mid-gap trap (T = 1, c_n = c_p) in an intrinsic volume of InSb-like n_i = 2e16 cm^-3
     (Levinshtein, Rumyantsev & Shur, Handbook Series on Semiconductor Parameters vol. 1, 1996)
     with N_e ~ N_h ~ N, band-to-band channel on.  Machlup (1954) with tau_0 = 1/(c_n n + e_p),
-    tau_1 = 1/(e_n + c_p p) (docs/physics.md) at the exact mean densities.  Finite reservoir: the
+    tau_1 = 1/(e_n + c_p p) (docs/physics-notes.md) at the exact mean densities.  Finite reservoir: the
     carrier counts the trap sees differ from the mean counts by at most about one carrier, a
     relative change O(1/N) of the rates, hence of the spectrum: the deviation must stay below
     1/N and fall as 1/N (a four times larger volume: ratio 4, accepted within [3, 5])."""
@@ -337,7 +337,7 @@ def test_parseval_integral_of_psd_is_variance():
 
 def test_cross_spectrum_convention_by_direct_fourier_transform():
     """S_ab(f) = 2 int E[dx_a(t + tau) dx_b(t)] exp(-2 pi i f tau) dtau (the convention of the
-    linear-noise spectral matrix in docs/physics.md), checked by transforming the covariance
+    linear-noise spectral matrix in docs/physics-notes.md), checked by transforming the covariance
     function computed independently in the time domain, exp(Q tau) by scipy.linalg.expm, with
     QUADPACK's Fourier integrals (scipy.integrate.quad, weight cos/sin); Wiener-Khinchin.
     exp(Q tau) comes from an eigendecomposition, checked against scipy.linalg.expm.

@@ -155,7 +155,7 @@ seed = 8
 
 def test_detailed_balance_in_the_dark():
     """In equilibrium each channel and its reverse fire equally often (detailed balance;
-    docs/physics.md).  The difference of two event counts of a reverse pair is bounded by the
+    docs/physics-notes.md).  The difference of two event counts of a reverse pair is bounded by the
     state's excursions, so the Poisson error sqrt(f + r) of independent counts is a
     conservative standard error for it."""
     scen = _scenario(DARK)
@@ -186,7 +186,7 @@ def test_exact_master_equation_agreement():
 
 def test_pulse_decays_with_srh_lifetime():
     """Excess electrons in p-type material decay as exp(-t/tau) with the low-injection SRH
-    lifetime tau = 1/(c_n N_t) (common practice; docs/physics.md: sigma = 1e-15 cm^2,
+    lifetime tau = 1/(c_n N_t) (common practice; docs/physics-notes.md: sigma = 1e-15 cm^2,
     v_th = 1e7 cm/s, N_t = 1e15 cm^-3 gives 100 ns).  Each ensemble mean is compared with
     its standard error sqrt(var/n) at 16 times (Bonferroni: P(any |z| > 4) < 1e-3)."""
     text = """

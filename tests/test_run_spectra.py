@@ -233,7 +233,7 @@ def _bd_truth() -> tuple[float, float, float]:
 @pytest.mark.parametrize("size", SIZES)
 def test_birth_death_psd_is_van_vliet_lorentzian(size):
     """S_N(f) = 4 var tau / (1 + (2 pi f tau)^2), var = mean = g/k, tau = 1/k (van Vliet,
-    Proc. IRE 46, 1004, 1958, from memory; docs/physics.md "One-level G-R noise")."""
+    Proc. IRE 46, 1004, 1958, from memory; docs/physics-notes.md "One-level G-R noise")."""
     runs = _birth_death_runs(size)
     var, tau, model_allow = _bd_truth()
     n_out = m = 0
@@ -253,7 +253,7 @@ def test_birth_death_psd_is_van_vliet_lorentzian(size):
         m += int(band.sum())
         ratios.append(e["psd"].values / ref)
         # N_h - N_e = A is conserved: the hole spectrum is the electron spectrum
-        # (charge conservation, docs/physics.md)
+        # (charge conservation, docs/physics-notes.md)
         np.testing.assert_allclose(ds["psd"].sel(species="holes"), e["psd"], rtol=1e-9)
         # the linear-noise spectrum of a linear process is the same Lorentzian (van Kampen,
         # Stochastic Processes in Physics and Chemistry, ch. X; exact for linear rates)
@@ -296,7 +296,7 @@ def test_birth_death_psd_is_van_vliet_lorentzian(size):
 # --------------------------------------------------------------------------------------------
 @pytest.mark.parametrize("size", SIZES)
 def test_parseval_psd_integral_is_stationary_variance(size):
-    """int_0^inf S(f) df = var (Parseval / Wiener-Khinchin; docs/physics.md), on the birth-death
+    """int_0^inf S(f) df = var (Parseval / Wiener-Khinchin; docs/physics-notes.md), on the birth-death
     runs.
 
     Derivation of the comparison.  The reported values are f_j = j df, j = 1..n, df =
@@ -355,7 +355,7 @@ def test_parseval_psd_integral_is_stationary_variance(size):
 @pytest.mark.parametrize("size", SIZES)
 def test_photoconductor_current_noise(size):
     """S_I(f) = 4 q G I / (1 + (2 pi f tau)^2), G = tau / t_tr, t_tr = L^2 / (mu_n V)
-    (van Vliet, Proc. IRE 46, 1004, 1958, and docs/physics.md "Photoconductor G-R current noise";
+    (van Vliet, Proc. IRE 46, 1004, 1958, and docs/physics-notes.md "Photoconductor G-R current noise";
     from memory), and I = q N_e mu_n V / L^2 (ohmic drift; common photoconductor theory,
     from memory), on the birth-death runs with only electrons mobile."""
     runs = _birth_death_runs(size)
@@ -406,7 +406,7 @@ def test_photoconductor_current_noise(size):
     t_each = float(stats.t.isf(ALPHA / (2 * len(runs)), BD_SIZES[size][1] - 1))
     assert np.all(np.abs(cur[:, 0] - i_true) < t_each * cur[:, 1]), cur
     # the same current through the gain: 4 q G I = 4 I^2 tau / N_0 with var = N_0
-    # (docs/physics.md, equivalent form)
+    # (docs/physics-notes.md, equivalent form)
     assert 4 * Q_C * gain * i_true == pytest.approx(4 * i_true**2 * tau / var, rel=1e-12)
 
 
@@ -546,7 +546,7 @@ def test_single_trap_is_machlup_telegraph(size):
     """One trap exchanging carriers with a large reservoir is a random telegraph signal:
     S(f) = 4 Delta^2 / ((tau_1 + tau_0) ((1/tau_1 + 1/tau_0)^2 + (2 pi f)^2)), Delta = 1,
     tau_0 = 1/(c_n n + e_p), tau_1 = 1/(e_n + c_p p), e_n = c_n n_1, e_p = c_p p_1 (Machlup,
-    J. Appl. Phys. 25, 341, 1954; docs/physics.md).
+    J. Appl. Phys. 25, 341, 1954; docs/physics-notes.md).
 
     Finite reservoir.  Machlup's formula takes n and p fixed.  Here filling the trap takes
     one electron from N_e (or gives one hole to N_h), so the rate c_n n seen by the empty
@@ -772,7 +772,7 @@ def test_time_sliced_trajectories_keep_the_spectrum(monkeypatch):
     (grmc.simulate; exact because the event loop is memoryless).  With slices of ~50 events
     the birth-death run of check 1 is joined from 3 settling slices and 128 window slices per
     trajectory; its spectrum is still van Vliet's Lorentzian (Proc. IRE 46, 1004, 1958, from
-    memory) within the intervals, and Parseval holds (docs/physics.md) -- a join that dropped,
+    memory) within the intervals, and Parseval holds (docs/physics-notes.md) -- a join that dropped,
     doubled or shifted a slice would show in both."""
     import grmc.simulate
 

@@ -111,7 +111,7 @@ def t_crit(n_traj: int, n_checks: int = 1, alpha: float = 1e-3) -> float:
 
 # --------------------------------------------------------------------------------------------
 def test_welch_interval_k16():
-    # docs/physics.md and Welch (1967): K = 16 -> [0.647, 1.750] S_hat
+    # docs/physics-notes.md and Welch (1967): K = 16 -> [0.647, 1.750] S_hat
     low, high = sp.welch_interval(1.0, 16)
     assert low == pytest.approx(0.647, abs=5e-4)
     assert high == pytest.approx(1.750, abs=5e-4)
@@ -276,7 +276,7 @@ def test_rectangular_window_leakage_formula():
 
 
 def test_parseval():
-    # Parseval (docs/physics.md): sum(P) df over the reported band equals the variance of the
+    # Parseval (docs/physics-notes.md): sum(P) df over the reported band equals the variance of the
     # fine-bin averages minus their power above fs/2.  For a telegraph corner at fs/20 the
     # expected discrepancy is about -5 % (Machlup's spectrum above fs/2, as seen through
     # the bin average).  Computed here exactly: numerator sum_j S(f_j) W(f_j) df (eq. (3)
@@ -441,7 +441,7 @@ def test_current_from_matrix_and_scale():
 
 
 def test_closed_forms_agree():
-    # docs/physics.md: photoconductor G-R noise 4 q G I / (1 + (2 pi f tau)^2) equals
+    # docs/physics-notes.md: photoconductor G-R noise 4 q G I / (1 + (2 pi f tau)^2) equals
     # 4 I^2 tau / (N_0 (1 + ...)) when var = N_0, i.e. van Vliet's Lorentzian times the
     # squared current per carrier (van Vliet, Proc. IRE 46, 1004, 1958, from memory).
     q = sp.ELEMENTARY_CHARGE_C
@@ -452,7 +452,7 @@ def test_closed_forms_agree():
         sp.photoconductor_gr_psd(f, current, tau / t_tr, tau),
         (q / t_tr) ** 2 * sp.lorentzian(f, n0, tau), rtol=1e-12)
     # Machlup's telegraph spectrum is a Lorentzian with 1/tau = 1/tau_1 + 1/tau_0 and
-    # variance tau_1 tau_0 / (tau_1 + tau_0)^2 (docs/physics.md)
+    # variance tau_1 tau_0 / (tau_1 + tau_0)^2 (docs/physics-notes.md)
     t1, t0 = 2e-6, 3e-6
     np.testing.assert_allclose(
         sp.telegraph_psd(f, t1, t0, delta=2.0),
